@@ -1,0 +1,16 @@
+"""bhgrow: supermassive black-hole seeding, growth and mergers on halo merger trees.
+
+Public API
+----------
+load_forest, Forest, write_hdf5 : merger trees (:mod:`bhgrow.trees`)
+Cosmology : fast cosmological tables (:mod:`bhgrow.cosmology`)
+BhgrowInputError : raised for any bad user input
+"""
+
+__version__ = "0.1.0"
+
+from .errors import BhgrowInputError, ParameterError  # noqa: E402
+from .trees import Forest, load_forest, write_hdf5  # noqa: E402
+
+__all__ = ["__version__", "BhgrowInputError", "ParameterError", "Forest", "load_forest",
+           "write_hdf5"]

@@ -1,0 +1,10 @@
+"""Merger trees: the columnar forest data model, readers/writers and validation."""
+
+from .forest import Forest, SnapshotTable
+from .io import load_forest, read_hdf5, read_table, write_csv, write_hdf5
+from .summary import summarize
+from .validate import OPTIONAL_COLUMNS, REQUIRED_COLUMNS, Problem, find_problems, validate
+
+__all__ = ["Forest", "SnapshotTable", "load_forest", "read_hdf5", "read_table", "write_csv",
+           "write_hdf5", "summarize", "find_problems", "validate", "Problem",
+           "REQUIRED_COLUMNS", "OPTIONAL_COLUMNS"]

@@ -1,0 +1,321 @@
+"""The columnar forest: bhgrow's in-memory merger-tree data model (DESIGN §5, §11).
+
+A :class:`Forest` holds one or many merger trees ("forests": sets of halos linked by
+descendant pointers) as aligned node arrays, sorted by ``(snap, forest_id, node_id)`` so
+that every snapshot is one contiguous slice. Derived indices are built once:
+
+* ``desc_index`` — row of each node's descendant (-1 for roots);
+* progenitors in CSR form: the progenitors of row ``i`` are
+  ``prog_index[prog_offsets[i]:prog_offsets[i + 1]]``, most massive first;
+* ``main_prog`` — row of the main progenitor (-1 for leaves).
+
+Main progenitor rule: the most massive progenitor; among progenitors of exactly equal
+mass, the one with the lowest ``node_id`` (a documented, deterministic tie rule).
+
+Masses are physical Msun; ``box_mpc`` is a comoving side length in Mpc (not Mpc/h);
+``weight_mpc3`` is the comoving number density one forest represents, in Mpc^-3.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from ..errors import BhgrowInputError
+from .validate import OPTIONAL_COLUMNS, REQUIRED_COLUMNS, validate
+
+
+@dataclass(frozen=True)
+class SnapshotTable:
+    """Map from snapshot number to redshift, sorted by snapshot number (z decreasing)."""
+
+    snap: np.ndarray
+    z: np.ndarray
+
+    def z_of(self, snap) -> np.ndarray:
+        """Redshift of the given snapshot numbers (must be in the table)."""
+        return self.z[np.searchsorted(self.snap, snap)]
+
+    def __len__(self) -> int:
+        return int(self.snap.size)
+
+
+@dataclass(eq=False)
+class Forest:
+    """A set of merger trees as aligned, snapshot-sorted node arrays.
+
+    Build one with :meth:`from_columns` (validates) rather than the constructor.
+
+    Attributes
+    ----------
+    node_id, desc_id, forest_id : ndarray of int64
+    snap : ndarray of int64
+    mass_msun : ndarray of float64
+        Halo virial mass, physical Msun.
+    extra : dict of str -> ndarray
+        Optional per-node columns (``vmax_kms``, ``gas_msun``, ...), aligned with nodes.
+        ``weight_mpc3`` is *not* kept here but per forest in :attr:`forest_weight`.
+    snapshots : SnapshotTable
+    forest_ids : ndarray of int64
+        Sorted unique forest ids.
+    forest_weight : ndarray of float64 or None
+        Comoving number density [Mpc^-3] each forest represents, aligned with
+        :attr:`forest_ids`; None for simulation boxes (use :attr:`box_mpc`).
+    box_mpc : float or None
+        Comoving box side [Mpc] for simulation trees.
+    meta : dict
+        Free-form provenance (``h`` of the source, cosmology parameters, source file).
+    """
+
+    node_id: np.ndarray
+    desc_id: np.ndarray
+    forest_id: np.ndarray
+    snap: np.ndarray
+    mass_msun: np.ndarray
+    snapshots: SnapshotTable
+    extra: dict = field(default_factory=dict)
+    forest_ids: np.ndarray = None
+    forest_weight: np.ndarray | None = None
+    box_mpc: float | None = None
+    meta: dict = field(default_factory=dict)
+    # derived (filled by _index)
+    desc_index: np.ndarray = None
+    prog_offsets: np.ndarray = None
+    prog_index: np.ndarray = None
+    main_prog: np.ndarray = None
+    snap_offsets: np.ndarray = None
+    forest_index: np.ndarray = None
+
+    # ------------------------------------------------------------------ construction
+    @classmethod
+    def from_columns(cls, columns: dict, snap_nums, snap_z, *, box_mpc=None,
+                     forest_weight: dict | None = None, meta: dict | None = None,
+                     source: str = "<memory>") -> "Forest":
+        """Validate node columns and build a forest.
+
+        Parameters
+        ----------
+        columns : dict of str -> array_like
+            Node columns under bhgrow names: ``node_id, desc_id, forest_id, snap,
+            mass_msun`` and any of the optional ones (see :mod:`bhgrow.trees.validate`).
+            A ``weight_mpc3`` node column is folded into per-forest weights.
+        snap_nums, snap_z : array_like
+            The snapshot table.
+        box_mpc : float, optional
+            Comoving box side in Mpc.
+        forest_weight : dict, optional
+            ``{"forest_id": ids, "weight_mpc3": weights}`` per forest (alternative to a
+            node column).
+        meta : dict, optional
+            Provenance.
+        source : str
+            File name for error messages.
+
+        Raises
+        ------
+        BhgrowInputError
+            Listing every broken rule with the offending node ids.
+        """
+        unknown = sorted(set(columns) - set(REQUIRED_COLUMNS) - set(OPTIONAL_COLUMNS))
+        if unknown:
+            raise BhgrowInputError(
+                f"{source}: unknown node columns {', '.join(map(repr, unknown))}; bhgrow "
+                f"columns are {', '.join(list(REQUIRED_COLUMNS) + list(OPTIONAL_COLUMNS))}",
+                source=source, rule="unknown_columns", rows=unknown)
+        validate(columns, snap_nums, snap_z, source=source)
+        node_id = np.asarray(columns["node_id"]).astype(np.int64)
+        desc_id = np.asarray(columns["desc_id"]).astype(np.int64)
+        forest_id = np.asarray(columns["forest_id"]).astype(np.int64)
+        snap = np.asarray(columns["snap"]).astype(np.int64)
+        mass = np.asarray(columns["mass_msun"]).astype(np.float64)
+        extra = {k: np.asarray(v).astype(np.float64) for k, v in columns.items()
+                 if k in OPTIONAL_COLUMNS and k != "weight_mpc3"}
+
+        s_order = np.argsort(np.asarray(snap_nums).astype(np.int64), kind="stable")
+        snaps = SnapshotTable(np.asarray(snap_nums).astype(np.int64)[s_order],
+                              np.asarray(snap_z).astype(np.float64)[s_order])
+        order = np.lexsort((node_id, forest_id, snap))
+        fids = np.unique(forest_id)
+        weights = None
+        if "weight_mpc3" in columns:
+            w = np.asarray(columns["weight_mpc3"], dtype=np.float64)
+            first = np.unique(forest_id, return_index=True)[1]
+            weights = w[first]
+        if forest_weight is not None:
+            weights = _align_forest_weights(fids, forest_weight, source)
+        if box_mpc is not None:
+            box_mpc = float(box_mpc)
+            if not np.isfinite(box_mpc) or box_mpc <= 0:
+                raise BhgrowInputError(f"{source}: box size must be finite and > 0 Mpc; got "
+                                       f"{box_mpc}", source=source, rule="bad_box")
+        f = cls(node_id=node_id[order], desc_id=desc_id[order], forest_id=forest_id[order],
+                snap=snap[order], mass_msun=mass[order], snapshots=snaps,
+                extra={k: v[order] for k, v in extra.items()}, forest_ids=fids,
+                forest_weight=weights, box_mpc=box_mpc, meta=dict(meta or {}))
+        f._index()
+        return f
+
+    def _index(self) -> None:
+        """Build descendant rows, CSR progenitor lists, main progenitors, snapshot slices."""
+        n = self.node_id.size
+        id_order = np.argsort(self.node_id, kind="stable")
+        pos = np.searchsorted(self.node_id, self.desc_id, sorter=id_order)
+        pos = np.minimum(pos, n - 1)
+        self.desc_index = np.where(self.desc_id >= 0, id_order[pos], -1).astype(np.int64)
+
+        has = self.desc_index >= 0
+        rows = np.flatnonzero(has)
+        # progenitors grouped by descendant, most massive first, ties -> lowest node_id
+        o = np.lexsort((self.node_id[rows], -self.mass_msun[rows], self.desc_index[rows]))
+        self.prog_index = rows[o]
+        counts = np.bincount(self.desc_index[rows], minlength=n)
+        self.prog_offsets = np.zeros(n + 1, dtype=np.int64)
+        np.cumsum(counts, out=self.prog_offsets[1:])
+        self.main_prog = np.full(n, -1, dtype=np.int64)
+        with_prog = counts > 0
+        self.main_prog[with_prog] = self.prog_index[self.prog_offsets[:-1][with_prog]]
+
+        snap_pos = np.searchsorted(self.snapshots.snap, self.snap)
+        self.snap_offsets = np.searchsorted(snap_pos, np.arange(len(self.snapshots) + 1))
+        self.forest_index = np.searchsorted(self.forest_ids, self.forest_id)
+
+    # ------------------------------------------------------------------ basic facts
+    @property
+    def n_nodes(self) -> int:
+        return int(self.node_id.size)
+
+    @property
+    def n_forests(self) -> int:
+        return int(self.forest_ids.size)
+
+    @property
+    def z(self) -> np.ndarray:
+        """Redshift of every node."""
+        return self.snapshots.z_of(self.snap)
+
+    def snapshot_slice(self, k: int) -> slice:
+        """Rows of the ``k``-th snapshot of the table (0 = earliest)."""
+        return slice(int(self.snap_offsets[k]), int(self.snap_offsets[k + 1]))
+
+    def progenitors(self, row: int) -> np.ndarray:
+        """Rows of the progenitors of node ``row``, most massive first."""
+        return self.prog_index[self.prog_offsets[row]:self.prog_offsets[row + 1]]
+
+    @property
+    def roots(self) -> np.ndarray:
+        """Rows of nodes without descendant."""
+        return np.flatnonzero(self.desc_index < 0)
+
+    def nodes_per_forest(self) -> np.ndarray:
+        """Node count of each forest, aligned with :attr:`forest_ids`."""
+        return np.bincount(self.forest_index, minlength=self.n_forests)
+
+    # ------------------------------------------------------------------ subsets
+    def select_forests(self, ids) -> "Forest":
+        """A new forest holding only the given forest ids (whole forests; keeps order)."""
+        ids = np.unique(np.asarray(ids, dtype=np.int64))
+        keep_f = np.isin(self.forest_ids, ids)
+        missing = ids[~np.isin(ids, self.forest_ids)]
+        if missing.size:
+            raise BhgrowInputError(f"forest ids not present: {missing[:10].tolist()}",
+                                   rule="unknown_forests", rows=missing[:10].tolist())
+        mask = keep_f[self.forest_index]
+        sub = Forest(node_id=self.node_id[mask], desc_id=self.desc_id[mask],
+                     forest_id=self.forest_id[mask], snap=self.snap[mask],
+                     mass_msun=self.mass_msun[mask], snapshots=self.snapshots,
+                     extra={k: v[mask] for k, v in self.extra.items()},
+                     forest_ids=self.forest_ids[keep_f],
+                     forest_weight=None if self.forest_weight is None
+                     else self.forest_weight[keep_f],
+                     box_mpc=self.box_mpc, meta=dict(self.meta))
+        sub._index()
+        return sub
+
+    def chunks(self, max_nodes: int) -> Iterator["Forest"]:
+        """Yield sub-forests of whole forests with at most ``max_nodes`` nodes each.
+
+        Forests are packed in id order; a single forest larger than ``max_nodes`` forms a
+        chunk of its own.
+        """
+        if max_nodes < 1:
+            raise BhgrowInputError(f"`max_nodes` of Forest.chunks must be >= 1; got {max_nodes}")
+        sizes = self.nodes_per_forest()
+        start = 0
+        while start < sizes.size:
+            total = np.cumsum(sizes[start:])
+            stop = start + max(1, int(np.searchsorted(total, max_nodes, side="right")))
+            yield self.select_forests(self.forest_ids[start:stop])
+            start = stop
+
+    def iter_forests(self) -> Iterator["Forest"]:
+        """Yield one sub-forest per forest id (convenient; slow for many forests)."""
+        for fid in self.forest_ids:
+            yield self.select_forests([fid])
+
+    # ------------------------------------------------------------------ trees
+    def main_branch_root(self) -> np.ndarray:
+        """For each node, the row of the root whose main branch it lies on, else -1.
+
+        A node lies on a root's main branch if every step down to the root goes through
+        main progenitors. One vectorized pass per snapshot, newest first.
+        """
+        out = np.full(self.n_nodes, -1, dtype=np.int64)
+        roots = self.desc_index < 0
+        out[roots] = np.flatnonzero(roots)
+        for k in range(len(self.snapshots) - 1, -1, -1):
+            sl = self.snapshot_slice(k)
+            rows = np.arange(sl.start, sl.stop)
+            d = self.desc_index[rows]
+            linked = d >= 0
+            rows, d = rows[linked], d[linked]
+            is_main = self.main_prog[d] == rows
+            out[rows[is_main]] = out[d[is_main]]
+        return out
+
+    def to_columns(self) -> dict:
+        """Node columns under bhgrow names (weights expanded to a node column if present)."""
+        cols = {"node_id": self.node_id, "desc_id": self.desc_id,
+                "forest_id": self.forest_id, "snap": self.snap, "mass_msun": self.mass_msun}
+        cols.update(self.extra)
+        if self.forest_weight is not None:
+            cols["weight_mpc3"] = self.forest_weight[self.forest_index]
+        return cols
+
+    def volume_weight(self) -> np.ndarray:
+        """Comoving number density [Mpc^-3] each forest stands for, aligned with forest_ids.
+
+        Weighted (EPS) forests carry their own weights; simulation trees give every forest
+        ``1 / box_mpc**3``. Raises if the forest has neither.
+        """
+        if self.forest_weight is not None:
+            return self.forest_weight
+        if self.box_mpc is not None:
+            return np.full(self.n_forests, 1.0 / self.box_mpc**3)
+        raise BhgrowInputError("the forest has neither per-forest weights nor a box size, so "
+                               "no rate per comoving volume can be formed; give a box size "
+                               "(--box-mpc) or weight_mpc3", rule="no_volume")
+
+
+def _align_forest_weights(fids: np.ndarray, forest_weight: dict, source: str) -> np.ndarray:
+    ids = np.asarray(forest_weight["forest_id"]).astype(np.int64)
+    w = np.asarray(forest_weight["weight_mpc3"]).astype(np.float64)
+    if ids.shape != w.shape:
+        raise BhgrowInputError(f"{source}: forest weight table columns differ in length",
+                               source=source, rule="bad_weights")
+    bad = ~np.isfinite(w) | (w < 0)
+    if bad.any():
+        raise BhgrowInputError(f"{source}: [bad_weights] forest weights must be finite and "
+                               f">= 0; bad for forests {ids[bad][:10].tolist()}",
+                               source=source, rule="bad_weights", rows=ids[bad][:10].tolist())
+    order = np.argsort(ids)
+    pos = np.searchsorted(ids[order], fids)
+    pos = np.minimum(pos, max(ids.size - 1, 0))
+    ok = ids.size > 0 and np.all(ids[order][pos] == fids)
+    if not ok:
+        lacking = fids if ids.size == 0 else fids[ids[order][pos] != fids]
+        raise BhgrowInputError(f"{source}: [bad_weights] forests without a weight: "
+                               f"{lacking[:10].tolist()}", source=source, rule="bad_weights",
+                               rows=lacking[:10].tolist())
+    return w[order][pos]

@@ -1,0 +1,304 @@
+"""Vectorized validation of merger-tree columns (DESIGN §5).
+
+:func:`find_problems` checks every rule at once and returns a list of :class:`Problem`;
+:func:`validate` raises one :class:`~bhgrow.errors.BhgrowInputError` that lists them all,
+naming the file, the rule and the first offending node ids. No Python loop over nodes:
+every check is a numpy expression, and the cycle check uses pointer doubling
+(O(N log N)).
+
+Rules
+-----
+============================ ==========================================================
+``missing_columns``          a required column is absent
+``empty``                    no rows at all
+``wrong_dtype``              ids/snap not integers, mass not numeric, NaN in an id column
+``negative_ids``             a ``node_id`` below 0 (``-1`` is the root marker of ``desc_id``)
+``duplicate_ids``            a ``node_id`` occurs more than once
+``bad_mass``                 a mass that is NaN, infinite, zero or negative
+``bad_snapshot_table``       snapshot numbers repeated, redshifts non-finite/negative, or
+                             redshift not strictly decreasing with snapshot number
+``unknown_snapshots``        a node's ``snap`` is not in the snapshot table
+``missing_descendants``      ``desc_id`` is not -1 and names no node
+``descendant_not_later``     the descendant is not at a later snapshot (lower redshift)
+``cycles``                   following descendants never reaches a root
+``cross_forest_links``       a node and its descendant carry different ``forest_id``
+``bad_weights``              ``weight_mpc3`` non-finite, negative, or not constant in a forest
+``bad_optional_values``      an optional column (gas, metallicity, ...) non-finite or < 0
+============================ ==========================================================
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from ..errors import BhgrowInputError
+
+#: required node columns and the dtype kind each must have ("i" integer, "f" number)
+REQUIRED_COLUMNS: dict[str, str] = {
+    "node_id": "i",
+    "desc_id": "i",
+    "forest_id": "i",
+    "snap": "i",
+    "mass_msun": "f",
+}
+#: optional node columns (all physical quantities >= 0); see DESIGN §5
+OPTIONAL_COLUMNS: dict[str, str] = {
+    "weight_mpc3": "comoving number density each forest represents [Mpc^-3]",
+    "vmax_kms": "maximum circular velocity [km/s]",
+    "rvir_kpc": "virial radius, physical [kpc]",
+    "gas_msun": "gas mass [Msun]",
+    "metallicity": "gas metallicity, mass fraction (not solar units)",
+    "j_lw": "Lyman-Werner intensity [1e-21 erg/s/cm^2/Hz/sr]",
+}
+
+#: how many offending ids a message shows per rule
+MAX_SHOWN = 10
+
+
+@dataclass(frozen=True)
+class Problem:
+    """One broken rule: its name, a sentence, and the first offending ids (or rows)."""
+
+    rule: str
+    message: str
+    ids: tuple = ()
+    count: int = 0
+
+    def format(self) -> str:
+        shown = ", ".join(str(i) for i in self.ids[:MAX_SHOWN])
+        more = f" (and {self.count - MAX_SHOWN} more)" if self.count > MAX_SHOWN else ""
+        tail = f": {shown}{more}" if shown else ""
+        return f"[{self.rule}] {self.message}{tail}"
+
+
+def _ids(values, mask) -> tuple:
+    sel = np.asarray(values)[mask][:MAX_SHOWN]
+    return tuple(v.item() if hasattr(v, "item") else v for v in sel)
+
+
+def _coerce_int(name: str, values, problems: list[Problem]):
+    """Return an int64 array, or None (with a ``wrong_dtype`` problem) if not integral."""
+    arr = np.asarray(values)
+    if arr.dtype.kind in "iu":
+        return arr.astype(np.int64, copy=False)
+    if arr.dtype.kind == "b":
+        problems.append(Problem("wrong_dtype", f"column `{name}` must hold integers; got booleans"))
+        return None
+    if arr.dtype.kind == "f":
+        bad = ~np.isfinite(arr) | (arr != np.round(arr)) | (np.abs(arr) > 2.0**53)
+        if bad.any():
+            rows = np.flatnonzero(bad)
+            problems.append(Problem(
+                "wrong_dtype",
+                f"column `{name}` must hold integers; non-integer or missing values at rows",
+                _ids(rows, slice(None)), int(bad.sum())))
+            return None
+        return arr.astype(np.int64)
+    problems.append(Problem("wrong_dtype",
+                            f"column `{name}` must hold integers; got dtype {arr.dtype}"))
+    return None
+
+
+def _coerce_float(name: str, values, problems: list[Problem]):
+    arr = np.asarray(values)
+    if arr.dtype.kind in "iuf":
+        return arr.astype(np.float64, copy=False)
+    problems.append(Problem("wrong_dtype",
+                            f"column `{name}` must hold numbers; got dtype {arr.dtype}"))
+    return None
+
+
+def check_snapshot_table(snap_nums, snap_z) -> list[Problem]:
+    """Rules on the snapshot table alone (see module docstring)."""
+    problems: list[Problem] = []
+    s = _coerce_int("snapshots/snap", snap_nums, problems)
+    z = _coerce_float("snapshots/z", snap_z, problems)
+    if s is None or z is None:
+        return problems
+    if s.shape != z.shape or s.ndim != 1:
+        return [Problem("bad_snapshot_table", "snapshot numbers and redshifts differ in length")]
+    if s.size == 0:
+        return [Problem("bad_snapshot_table", "the snapshot table is empty")]
+    order = np.argsort(s, kind="stable")
+    s, z = s[order], z[order]
+    dup = np.r_[False, s[1:] == s[:-1]]
+    if dup.any():
+        problems.append(Problem("bad_snapshot_table", "snapshot numbers repeated",
+                                _ids(s, dup), int(dup.sum())))
+    bad_z = ~np.isfinite(z) | (z < 0)
+    if bad_z.any():
+        problems.append(Problem("bad_snapshot_table",
+                                "snapshot redshifts must be finite and >= 0; bad at snaps",
+                                _ids(s, bad_z), int(bad_z.sum())))
+    elif not dup.any():
+        non_dec = np.r_[False, z[1:] >= z[:-1]]
+        if non_dec.any():
+            problems.append(Problem(
+                "bad_snapshot_table",
+                "redshift must decrease strictly as the snapshot number grows; fails at snaps",
+                _ids(s, non_dec), int(non_dec.sum())))
+    return problems
+
+
+def find_problems(columns: dict, snap_nums, snap_z) -> list[Problem]:
+    """Check node columns against every rule of DESIGN §5.
+
+    Parameters
+    ----------
+    columns : dict of str -> array_like
+        Node columns (bhgrow names). Must hold the :data:`REQUIRED_COLUMNS`.
+    snap_nums, snap_z : array_like
+        The snapshot table: snapshot numbers and their redshifts.
+
+    Returns
+    -------
+    list of Problem
+        Empty when the forest is valid.
+    """
+    missing = [c for c in REQUIRED_COLUMNS if c not in columns]
+    if missing:
+        return [Problem("missing_columns",
+                        "required columns absent: " + ", ".join(f"`{c}`" for c in missing)
+                        + "; present: " + ", ".join(f"`{c}`" for c in columns))]
+    lengths = {len(np.atleast_1d(columns[c])) for c in columns}
+    if len(lengths) != 1:
+        return [Problem("wrong_dtype", "columns differ in length: "
+                        + ", ".join(f"`{c}`={len(np.atleast_1d(columns[c]))}" for c in columns))]
+    if lengths.pop() == 0:
+        return [Problem("empty", "the file holds no tree nodes")]
+
+    problems: list[Problem] = []
+    node = _coerce_int("node_id", columns["node_id"], problems)
+    desc = _coerce_int("desc_id", columns["desc_id"], problems)
+    forest = _coerce_int("forest_id", columns["forest_id"], problems)
+    snap = _coerce_int("snap", columns["snap"], problems)
+    mass = _coerce_float("mass_msun", columns["mass_msun"], problems)
+    problems += check_snapshot_table(snap_nums, snap_z)
+    if mass is not None:
+        bad = ~np.isfinite(mass) | (mass <= 0)
+        if bad.any() and node is not None:
+            problems.append(Problem("bad_mass", "halo masses must be finite and > 0; bad at nodes",
+                                    _ids(node, bad), int(bad.sum())))
+        elif bad.any():
+            problems.append(Problem("bad_mass", "halo masses must be finite and > 0; bad at rows",
+                                    _ids(np.arange(mass.size), bad), int(bad.sum())))
+    for name in OPTIONAL_COLUMNS:
+        if name not in columns:
+            continue
+        arr = _coerce_float(name, columns[name], problems)
+        if arr is None:
+            continue
+        bad = ~np.isfinite(arr) | (arr < 0)
+        if bad.any():
+            rule = "bad_weights" if name == "weight_mpc3" else "bad_optional_values"
+            who = node if node is not None else np.arange(arr.size)
+            problems.append(Problem(rule, f"`{name}` must be finite and >= 0; bad at nodes",
+                                    _ids(who, bad), int(bad.sum())))
+        elif name == "weight_mpc3" and forest is not None:
+            problems += _check_weights(forest, arr)
+    if node is None or desc is None or forest is None or snap is None:
+        return problems
+
+    # --- ids -------------------------------------------------------------------------------
+    neg = node < 0
+    if neg.any():
+        problems.append(Problem("negative_ids", "node ids must be >= 0; negative ids",
+                                _ids(node, neg), int(neg.sum())))
+    order = np.argsort(node, kind="stable")
+    sorted_ids = node[order]
+    dup = np.r_[False, sorted_ids[1:] == sorted_ids[:-1]]
+    if dup.any():
+        dup_ids = np.unique(sorted_ids[dup])
+        problems.append(Problem("duplicate_ids", "node ids occur more than once",
+                                _ids(dup_ids, slice(None)), dup_ids.size))
+
+    # --- snapshots -------------------------------------------------------------------------
+    snaps_known = np.asarray(snap_nums).astype(np.int64, copy=False) if np.asarray(
+        snap_nums).dtype.kind in "iuf" else np.zeros(0, np.int64)
+    known_sorted = np.unique(snaps_known)
+    unknown = ~np.isin(snap, known_sorted)
+    if unknown.any():
+        problems.append(Problem("unknown_snapshots",
+                                "nodes sit at snapshots absent from the snapshot table; nodes",
+                                _ids(node, unknown), int(unknown.sum())))
+
+    # --- descendants -----------------------------------------------------------------------
+    has_desc = desc != -1
+    pos = np.searchsorted(sorted_ids, desc)
+    pos_c = np.minimum(pos, sorted_ids.size - 1)
+    found = has_desc & (sorted_ids[pos_c] == desc)
+    missing_desc = has_desc & ~found
+    if missing_desc.any():
+        problems.append(Problem(
+            "missing_descendants", "descendant ids name no node in the file; nodes",
+            _ids(node, missing_desc), int(missing_desc.sum())))
+    desc_idx = np.where(found, order[pos_c], -1)
+
+    linked = desc_idx >= 0
+    self_link = linked & (desc == node)
+    if not unknown.any():
+        not_later = linked & (snap[np.maximum(desc_idx, 0)] <= snap)
+        not_later &= ~self_link
+        if not_later.any():
+            problems.append(Problem(
+                "descendant_not_later",
+                "descendant is not at a later snapshot than its progenitor; nodes",
+                _ids(node, not_later), int(not_later.sum())))
+    cyc = _nodes_on_cycles(desc_idx) | self_link
+    if cyc.any():
+        problems.append(Problem("cycles",
+                                "following descendants loops back and never reaches a root; nodes",
+                                _ids(node, cyc), int(cyc.sum())))
+    cross = linked & (forest[np.maximum(desc_idx, 0)] != forest)
+    if cross.any():
+        problems.append(Problem("cross_forest_links",
+                                "node and descendant carry different forest_id; nodes",
+                                _ids(node, cross), int(cross.sum())))
+    return problems
+
+
+def _check_weights(forest: np.ndarray, weight: np.ndarray) -> list[Problem]:
+    order = np.argsort(forest, kind="stable")
+    f, w = forest[order], weight[order]
+    start = np.r_[True, f[1:] != f[:-1]]
+    first_w = w[np.flatnonzero(start)[np.cumsum(start) - 1]]
+    differs = w != first_w
+    if differs.any():
+        bad_forests = np.unique(f[differs])
+        return [Problem("bad_weights", "`weight_mpc3` must be the same for every node of a "
+                        "forest; differs in forests", _ids(bad_forests, slice(None)),
+                        bad_forests.size)]
+    return []
+
+
+def _nodes_on_cycles(desc_idx: np.ndarray) -> np.ndarray:
+    """Mask of nodes whose descendant chain never ends (on or leading into a cycle).
+
+    Pointer doubling: after k rounds ``nxt`` is the 2^k-th successor (or -1 once the
+    chain has reached a root). With 2^k >= N every finite chain has ended.
+    """
+    n = desc_idx.size
+    nxt = desc_idx.copy()
+    rounds = max(1, int(np.ceil(np.log2(max(n, 2)))) + 1)
+    for _ in range(rounds):
+        alive = nxt >= 0
+        if not alive.any():
+            break
+        nxt[alive] = nxt[nxt[alive]]
+    return nxt >= 0
+
+
+def validate(columns: dict, snap_nums, snap_z, *, source: str = "<memory>") -> None:
+    """Raise :class:`BhgrowInputError` listing every broken rule, or return None."""
+    problems = find_problems(columns, snap_nums, snap_z)
+    if problems:
+        raise_problems(problems, source)
+
+
+def raise_problems(problems: list[Problem], source: str):
+    lines = "\n".join("  " + p.format() for p in problems)
+    raise BhgrowInputError(
+        f"{source}: invalid merger tree ({len(problems)} rule(s) broken)\n{lines}",
+        source=source, rule=problems[0].rule, rows=problems[0].ids)
