@@ -9,8 +9,9 @@ BhgrowInputError : raised for any bad user input
 
 __version__ = "0.1.0"
 
+from .cosmology import Cosmology  # noqa: E402
 from .errors import BhgrowInputError, ParameterError  # noqa: E402
 from .trees import Forest, load_forest, write_hdf5  # noqa: E402
 
-__all__ = ["__version__", "BhgrowInputError", "ParameterError", "Forest", "load_forest",
+__all__ = ["__version__", "Cosmology", "BhgrowInputError", "ParameterError", "Forest", "load_forest",
            "write_hdf5"]
