@@ -24,7 +24,8 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..errors import BhgrowInputError
-from .validate import OPTIONAL_COLUMNS, REQUIRED_COLUMNS, validate
+from .validate import (OPTIONAL_COLUMNS, REQUIRED_COLUMNS, _coerce_float, _coerce_int,
+                       validate)
 
 
 @dataclass(frozen=True)
@@ -146,10 +147,14 @@ class Forest:
         if forest_weight is not None:
             weights = _align_forest_weights(fids, forest_weight, source)
         if box_mpc is not None:
-            box_mpc = float(box_mpc)
-            if not np.isfinite(box_mpc) or box_mpc <= 0:
+            try:
+                box = float(box_mpc)
+            except (TypeError, ValueError):
+                box = float("nan")  # not a number: reported just below as a bad box size
+            if not np.isfinite(box) or box <= 0:
                 raise BhgrowInputError(f"{source}: box size must be finite and > 0 Mpc; got "
                                        f"{box_mpc}", source=source, rule="bad_box")
+            box_mpc = box
         f = cls(node_id=node_id[order], desc_id=desc_id[order], forest_id=forest_id[order],
                 snap=snap[order], mass_msun=mass[order], snapshots=snaps,
                 extra={k: v[order] for k, v in extra.items()}, forest_ids=fids,
@@ -299,11 +304,22 @@ class Forest:
 
 
 def _align_forest_weights(fids: np.ndarray, forest_weight: dict, source: str) -> np.ndarray:
-    ids = np.asarray(forest_weight["forest_id"]).astype(np.int64)
-    w = np.asarray(forest_weight["weight_mpc3"]).astype(np.float64)
-    if ids.shape != w.shape:
-        raise BhgrowInputError(f"{source}: forest weight table columns differ in length",
-                               source=source, rule="bad_weights")
+    problems: list = []
+    ids = _coerce_int("forests/forest_id", forest_weight["forest_id"], problems)
+    w = _coerce_float("forests/weight_mpc3", forest_weight["weight_mpc3"], problems)
+    if problems:
+        shown = ", ".join(str(i) for i in problems[0].ids)
+        raise BhgrowInputError(f"{source}: [bad_weights] {problems[0].message}"
+                               + (f": {shown}" if shown else ""), source=source,
+                               rule="bad_weights", rows=problems[0].ids)
+    if ids.shape != w.shape or ids.ndim != 1:
+        raise BhgrowInputError(f"{source}: forest weight table columns must be 1-D and of "
+                               f"equal length", source=source, rule="bad_weights")
+    uniq, counts = np.unique(ids, return_counts=True)
+    if (counts > 1).any():
+        raise BhgrowInputError(f"{source}: [bad_weights] forest ids repeated in the weight "
+                               f"table: {uniq[counts > 1][:10].tolist()}", source=source,
+                               rule="bad_weights", rows=uniq[counts > 1][:10].tolist())
     bad = ~np.isfinite(w) | (w < 0)
     if bad.any():
         raise BhgrowInputError(f"{source}: [bad_weights] forest weights must be finite and "

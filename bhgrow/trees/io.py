@@ -127,12 +127,15 @@ def read_hdf5(path) -> Forest:
         fmt = h5.attrs.get("format")
         if isinstance(fmt, bytes):
             fmt = fmt.decode()
-        if fmt != FORMAT_NAME:
+        if not (isinstance(fmt, str) and fmt == FORMAT_NAME):
             raise BhgrowInputError(
                 f"{source}: not a bhgrow forest file (attribute format={fmt!r}, expected "
                 f"{FORMAT_NAME!r}); tables from other codes load with a column map "
                 f"(see `bhgrow trees check --help`)", source=source, rule="wrong_format")
-        version = int(h5.attrs.get("schema_version", -1))
+        try:
+            version = int(h5.attrs.get("schema_version", -1))
+        except (TypeError, ValueError):
+            version = -1
         if version != SCHEMA_VERSION:
             raise BhgrowInputError(f"{source}: schema version {version} is not supported "
                                    f"(this bhgrow reads version {SCHEMA_VERSION})",
@@ -141,6 +144,10 @@ def read_hdf5(path) -> Forest:
             if grp not in h5:
                 raise BhgrowInputError(f"{source}: group `/{grp}` is missing", source=source,
                                        rule="missing_columns")
+        for grp in ("nodes", "snapshots", "forests"):
+            if grp in h5 and not isinstance(h5[grp], h5py.Group):
+                raise BhgrowInputError(f"{source}: `/{grp}` must be a group of 1-D datasets",
+                                       source=source, rule="wrong_layout")
         unknown = sorted(set(h5["nodes"]) - set(_KNOWN))
         if unknown:
             raise BhgrowInputError(f"{source}: unknown node columns {unknown}; bhgrow "
@@ -164,6 +171,8 @@ def read_hdf5(path) -> Forest:
         try:
             meta = json.loads(h5.attrs.get("meta_json", "{}"))
         except (TypeError, ValueError):
+            meta = {}
+        if not isinstance(meta, dict):
             meta = {}
     meta.setdefault("source_file", source)
     return Forest.from_columns(cols, snap, z, box_mpc=box, forest_weight=weights, meta=meta,
@@ -281,11 +290,11 @@ def _snapshots_from_column(cols: dict, z, source: str):
         return np.zeros(0, np.int64), np.zeros(0)
     snap = np.asarray(cols["snap"])
     z = np.asarray(z)
+    if snap.size == 0:  # a header-only table: reported as `empty` by validation
+        return np.zeros(0, np.int64), np.zeros(0)
     if snap.dtype.kind not in "iuf" or z.dtype.kind not in "iuf":
         raise BhgrowInputError(f"{source}: [wrong_dtype] `snap` and `z` must be numeric",
                                source=source, rule="wrong_dtype")
-    if snap.size == 0:
-        return np.zeros(0, np.int64), np.zeros(0)
     ok = np.isfinite(snap)
     uniq, inv = np.unique(snap[ok], return_inverse=True)
     zmin = np.full(uniq.size, np.inf)

@@ -11,6 +11,7 @@ Rules
 ============================ ==========================================================
 ``missing_columns``          a required column is absent
 ``empty``                    no rows at all
+``wrong_layout``             a column is not a 1-D array
 ``wrong_dtype``              ids/snap not integers, mass not numeric, NaN in an id column
 ``negative_ids``             a ``node_id`` below 0 (``-1`` is the root marker of ``desc_id``)
 ``duplicate_ids``            a ``node_id`` occurs more than once
@@ -81,6 +82,11 @@ def _ids(values, mask) -> tuple:
 def _coerce_int(name: str, values, problems: list[Problem]):
     """Return an int64 array, or None (with a ``wrong_dtype`` problem) if not integral."""
     arr = np.asarray(values)
+    if arr.dtype.kind == "u" and arr.size and arr.max() > np.iinfo(np.int64).max:
+        rows = np.flatnonzero(arr > np.iinfo(np.int64).max)
+        problems.append(Problem("wrong_dtype", f"column `{name}` holds values beyond the "
+                                f"int64 range at rows", _ids(rows, slice(None)), rows.size))
+        return None
     if arr.dtype.kind in "iu":
         return arr.astype(np.int64, copy=False)
     if arr.dtype.kind == "b":
@@ -113,6 +119,8 @@ def _coerce_float(name: str, values, problems: list[Problem]):
 def check_snapshot_table(snap_nums, snap_z) -> list[Problem]:
     """Rules on the snapshot table alone (see module docstring)."""
     problems: list[Problem] = []
+    if np.size(snap_nums) == 0 and np.size(snap_z) == 0:  # e.g. a header-only CSV (dtype object)
+        return [Problem("bad_snapshot_table", "the snapshot table is empty")]
     s = _coerce_int("snapshots/snap", snap_nums, problems)
     z = _coerce_float("snapshots/z", snap_z, problems)
     if s is None or z is None:
@@ -162,6 +170,10 @@ def find_problems(columns: dict, snap_nums, snap_z) -> list[Problem]:
         return [Problem("missing_columns",
                         "required columns absent: " + ", ".join(f"`{c}`" for c in missing)
                         + "; present: " + ", ".join(f"`{c}`" for c in columns))]
+    not_1d = [c for c in columns if np.ndim(columns[c]) != 1]
+    if not_1d:
+        return [Problem("wrong_layout", "columns must be 1-D arrays; not 1-D: "
+                        + ", ".join(f"`{c}` (shape {np.shape(columns[c])})" for c in not_1d))]
     lengths = {len(np.atleast_1d(columns[c])) for c in columns}
     if len(lengths) != 1:
         return [Problem("wrong_dtype", "columns differ in length: "
