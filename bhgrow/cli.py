@@ -57,7 +57,50 @@ def build_parser() -> argparse.ArgumentParser:
                            "range, volume or weights, and the median main-branch mass history.")
     _add_tree_input(info)
     info.add_argument("--json", action="store_true", help="print the facts as JSON")
+    _add_trees_make(tsub)
     return parser
+
+
+def _add_trees_make(tsub) -> None:
+    from .trees import make as mk
+
+    p = tsub.add_parser(
+        "make", help="generate weighted Monte Carlo merger trees (Parkinson, Cole & Helly 2008)",
+        description="Generate a weighted sample of Monte Carlo merger trees with the "
+        "Parkinson, Cole & Helly (2008) algorithm. Root masses are stratified in log M and "
+        "each forest carries weight_mpc3, the comoving number density of halos it stands "
+        "for under the chosen mass function, so rates come out per comoving Mpc^3.")
+    p.add_argument("-o", "--output", required=True, metavar="FILE",
+                   help="output HDF5 file (refuses to overwrite without --overwrite)")
+    p.add_argument("--overwrite", action="store_true", help="replace an existing FILE")
+    p.add_argument("--n-forests", type=int, default=mk.DEFAULT_N_FORESTS, metavar="N",
+                   help=f"number of forests (default {mk.DEFAULT_N_FORESTS})")
+    lo, hi = mk.DEFAULT_MASS_RANGE_MSUN
+    p.add_argument("--mass-range", type=float, nargs=2, default=[lo, hi],
+                   metavar=("LO", "HI"), help=f"root halo-mass range in Msun at --z-final "
+                   f"(default {lo:g} {hi:g})")
+    p.add_argument("--z-final", type=float, default=mk.DEFAULT_Z_FINAL, metavar="Z",
+                   help=f"redshift of the roots (default {mk.DEFAULT_Z_FINAL:g})")
+    p.add_argument("--z-start", type=float, default=mk.DEFAULT_Z_START, metavar="Z",
+                   help=f"redshift of the earliest snapshot (default {mk.DEFAULT_Z_START:g})")
+    p.add_argument("--snapshots", default=str(mk.DEFAULT_N_SNAPSHOTS), metavar="N|Z1,Z2,...",
+                   help="number of snapshots evenly spaced in log(1+z) from --z-start to "
+                   f"--z-final (default {mk.DEFAULT_N_SNAPSHOTS}), or a comma-separated list "
+                   "of redshifts")
+    p.add_argument("--resolution", type=float, default=mk.DEFAULT_RESOLUTION_MSUN,
+                   metavar="MSUN", help="mass resolution in Msun; smaller progenitors count "
+                   f"as smooth accretion (default {mk.DEFAULT_RESOLUTION_MSUN:g})")
+    p.add_argument("--resolution-frac", type=float, default=mk.DEFAULT_RESOLUTION_FRAC,
+                   metavar="F", help="per-forest resolution max(--resolution, F x root mass); "
+                   "keeps cluster trees small; 0 = off (default %(default)g)")
+    p.add_argument("--cosmology", default="Planck18", metavar="NAME",
+                   help="astropy cosmology realization (default Planck18)")
+    p.add_argument("--mass-function", default=mk.DEFAULT_MASS_FUNCTION,
+                   choices=["sheth_tormen", "press_schechter"],
+                   help=f"mass function for the weights (default {mk.DEFAULT_MASS_FUNCTION})")
+    p.add_argument("--seed", type=int, default=1, help="random seed (default 1); same seed, "
+                   "same file")
+    p.add_argument("--no-progress", action="store_true", help="no progress bar")
 
 
 def _load(args):
@@ -92,7 +135,48 @@ def _cmd_trees_info(args) -> int:
     return EXIT_OK
 
 
-_COMMANDS = {("trees", "check"): _cmd_trees_check, ("trees", "info"): _cmd_trees_info}
+def _parse_snapshots(text: str):
+    """`--snapshots`: an integer count, or a comma-separated list of redshifts."""
+    text = text.strip()
+    try:
+        if "," not in text:
+            return int(text), None
+        return None, [float(v) for v in text.split(",") if v.strip()]
+    except ValueError:
+        raise BhgrowInputError(f"--snapshots must be an integer count or a comma-separated "
+                               f"list of redshifts; got {text!r}", rule="bad_option") from None
+
+
+def _cmd_trees_make(args) -> int:
+    import time
+
+    from .trees.io import write_hdf5
+    from .trees.make import make_forests
+
+    out = Path(args.output)
+    if out.exists() and not args.overwrite:
+        raise BhgrowInputError(f"{out}: file exists; refusing to overwrite it (use "
+                               f"--overwrite)", source=str(out), rule="exists")
+    if not out.parent.exists():
+        raise BhgrowInputError(f"{out}: directory {out.parent} does not exist",
+                               source=str(out), rule="no_dir")
+    n_snap, z_list = _parse_snapshots(args.snapshots)
+    t0 = time.perf_counter()
+    forest = make_forests(
+        args.n_forests, mass_range_msun=tuple(args.mass_range), z_final=args.z_final,
+        z_start=args.z_start, n_snapshots=n_snap if n_snap is not None else 2,
+        snapshot_z=z_list, resolution_msun=args.resolution,
+        resolution_frac=args.resolution_frac, cosmology=args.cosmology,
+        mass_function=args.mass_function, seed=args.seed, progress=not args.no_progress)
+    write_hdf5(forest, out, overwrite=args.overwrite)
+    print(f"wrote {out}: {forest.n_forests} forests, {forest.n_nodes} nodes, "
+          f"{len(forest.snapshots)} snapshots, total weight "
+          f"{forest.forest_weight.sum():.4g} Mpc^-3 ({time.perf_counter() - t0:.1f} s)")
+    return EXIT_OK
+
+
+_COMMANDS = {("trees", "check"): _cmd_trees_check, ("trees", "info"): _cmd_trees_info,
+             ("trees", "make"): _cmd_trees_make}
 
 
 def main(argv=None) -> int:
@@ -102,11 +186,18 @@ def main(argv=None) -> int:
     try:
         return _COMMANDS[key](args)
     except BhgrowInputError as exc:
-        print(f"bhgrow: error: {exc}", file=sys.stderr)
+        tag = f"[{exc.rule}] " if exc.rule and f"[{exc.rule}]" not in str(exc) else ""
+        print(f"bhgrow: error: {tag}{exc}", file=sys.stderr)
         return EXIT_BAD_INPUT
     except KeyboardInterrupt:
         print("bhgrow: interrupted", file=sys.stderr)
         return 130
+    except BrokenPipeError:  # output piped into `head` etc.: not an error
+        try:
+            sys.stdout = open(os.devnull, "w")
+        except OSError:
+            pass
+        return EXIT_OK
     except Exception as exc:  # noqa: BLE001 - last line of defence: no traceback for users
         if os.environ.get("BHGROW_DEBUG"):
             raise
