@@ -209,10 +209,10 @@ def test_info_demo_text(capsys):
     with h5py.File(DEMO, "r") as h5:
         n_forests = np.unique(h5["nodes/forest_id"][()]).size
         mass = h5["nodes/mass_msun"][()]
-        box = float(h5.attrs["box_mpc"])
+        weights = h5["forests/weight_mpc3"][()]
     assert re.search(rf"^forests\s+{n_forests}$", out, re.M)
     assert f"{mass.min():.3e}" in out and f"{mass.max():.3e}" in out
-    assert re.search(rf"^box\s+{box:g} Mpc", out, re.M)
+    assert re.search(rf"^forest weights\s+total {weights.sum():.4g} Mpc\^-3", out, re.M)
 
 
 def test_info_demo_json(capsys):
@@ -224,15 +224,15 @@ def test_info_demo_json(capsys):
         desc = h5["nodes/desc_id"][()]
         mass = h5["nodes/mass_msun"][()]
         z = h5["snapshots/z"][()]
-        box = float(h5.attrs["box_mpc"])
+        weights = h5["forests/weight_mpc3"][()]
     assert info["n_forests"] == np.unique(forest_id).size
     assert info["n_nodes"] == forest_id.size
     assert info["n_snapshots"] == z.size
     assert info["n_roots"] == int((desc == -1).sum())
     assert info["mass_range_msun"] == [float(mass.min()), float(mass.max())]
     assert info["z_range"] == [float(z.min()), float(z.max())]
-    assert info["box_mpc"] == box
-    assert info["volume_mpc3"] == pytest.approx(box**3, rel=1e-12)
+    assert info["box_mpc"] is None
+    assert info["weights_mpc3"]["total"] == pytest.approx(weights.sum(), rel=1e-12)
     assert len(info["main_branch"]["z"]) == z.size
 
 

@@ -7,7 +7,8 @@ bhgrow's own HDF5 layout (schema version 1)
     /                       attrs: format = "bhgrow-forest", schema_version = 1,
                                    box_mpc (comoving Mpc; absent for weighted forests),
                                    meta_json (provenance: cosmology, generator, source h)
-    /nodes/<column>         one 1-D dataset per node column (bhgrow names, DESIGN §5)
+    /nodes/<column>         one 1-D dataset per node column (bhgrow names, DESIGN §5),
+                            gzip-compressed with byte shuffle
     /snapshots/snap         snapshot numbers (int64)
     /snapshots/z            their redshifts (float64)
     /forests/forest_id      (optional) per-forest table ...
@@ -41,6 +42,10 @@ SCHEMA_VERSION = 1
 _KNOWN = list(REQUIRED_COLUMNS) + list(OPTIONAL_COLUMNS)
 # how each column scales with h when the source uses h-units (value_phys = value * h**p)
 _H_POWER = {"mass_msun": -1, "gas_msun": -1, "rvir_kpc": -1, "weight_mpc3": 3}
+
+
+#: lossless gzip with byte shuffling: node ids and snapshots compress several-fold
+_COMPRESS = {"compression": "gzip", "compression_opts": 4, "shuffle": True}
 
 
 def _tmp_path(path: Path) -> Path:
@@ -79,9 +84,9 @@ def write_hdf5(forest: Forest, path, *, overwrite: bool = False) -> Path:
             h5.attrs["meta_json"] = json.dumps(forest.meta, sort_keys=True, default=str)
             g = h5.create_group("nodes")
             for name in ("node_id", "desc_id", "forest_id", "snap", "mass_msun"):
-                g.create_dataset(name, data=getattr(forest, name))
+                g.create_dataset(name, data=getattr(forest, name), **_COMPRESS)
             for name, arr in forest.extra.items():
-                g.create_dataset(name, data=arr)
+                g.create_dataset(name, data=arr, **_COMPRESS)
             s = h5.create_group("snapshots")
             s.create_dataset("snap", data=forest.snapshots.snap)
             s.create_dataset("z", data=forest.snapshots.z)

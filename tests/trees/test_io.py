@@ -153,5 +153,6 @@ def test_demo_file_loads():
     from pathlib import Path
 
     f = load_forest(Path(__file__).resolve().parents[2] / "trees_demo" / "tarn_hollow.h5")
-    assert f.n_forests == 60 and f.box_mpc == 25.0
+    assert f.n_forests == 1500 and f.box_mpc is None
+    assert f.forest_weight.shape == (1500,) and np.all(f.forest_weight > 0)
     assert np.all(f.mass_msun > 0)
