@@ -80,6 +80,9 @@ import numpy as np
 from scipy.special import hyp2f1
 
 from .. import _validate
+from ..rng import hash64 as _hash
+from ..rng import stream_keys as _root_keys
+from ..rng import uniform as _uniform
 from ..errors import BhgrowInputError
 from .forest import Forest
 
@@ -106,12 +109,7 @@ _J_K = 30 * 128
 _BOUND_TOL = 1e-6
 _SQRT_2_OVER_PI = math.sqrt(2.0 / math.pi)
 
-# SplitMix64 constants (Steele, Lea & Flood 2014)
 _M64 = (1 << 64) - 1
-_GAMMA = 0x9E3779B97F4A7C15
-_MIX1 = np.uint64(0xBF58476D1CE4E5B9)
-_MIX2 = np.uint64(0x94D049BB133111EB)
-_S30, _S27, _S31, _S11 = (np.uint64(s) for s in (30, 27, 31, 11))
 #: purposes of the per-branch random streams (counter = 4 * step + purpose + 1)
 _P_SPLIT, _P_Q, _P_ACCEPT, _P_CHILD = 0, 1, 2, 3
 
@@ -144,34 +142,6 @@ def snapshot_grid(n: int, z_start: float, z_final: float = 0.0) -> np.ndarray:
     z = np.expm1(np.linspace(math.log1p(z_start), math.log1p(z_final), n))
     z[0], z[-1] = z_start, z_final
     return z
-
-
-def _mix64(x: np.ndarray) -> np.ndarray:
-    """SplitMix64 output function on a uint64 array (Steele, Lea & Flood 2014)."""
-    x = x ^ (x >> _S30)
-    x *= _MIX1
-    x ^= x >> _S27
-    x *= _MIX2
-    x ^= x >> _S31
-    return x
-
-
-def _hash(keys: np.ndarray, step: int, purpose: int) -> np.ndarray:
-    """64 random bits per key for (step, purpose): mix64(key + counter * golden gamma)."""
-    offset = np.uint64(((4 * step + purpose + 1) * _GAMMA) & _M64)
-    return _mix64(keys + offset)
-
-
-def _uniform(keys: np.ndarray, step: int, purpose: int) -> np.ndarray:
-    """Uniform doubles in [0, 1) from the top 53 bits of :func:`_hash`."""
-    return (_hash(keys, step, purpose) >> _S11).astype(np.float64) * (2.0**-53)
-
-
-def _root_keys(seed: int, forest_ids: np.ndarray) -> np.ndarray:
-    """Stream key of each forest: a hash of (seed, forest_id)."""
-    s = _mix64(np.array([(seed * _GAMMA + 0x243F6A8885A308D3) & _M64], dtype=np.uint64))
-    fid = forest_ids.astype(np.uint64)
-    return _mix64(_mix64(fid ^ s) + np.uint64(_GAMMA))
 
 
 def _j_table(gamma1: float):
