@@ -58,6 +58,24 @@ def build_parser() -> argparse.ArgumentParser:
     _add_tree_input(info)
     info.add_argument("--json", action="store_true", help="print the facts as JSON")
     _add_trees_make(tsub)
+
+    runp = sub.add_parser("run", help="grow black holes on merger trees; write a run directory",
+                          description="Seed, grow and follow black holes through merger trees "
+                          "and write black_holes.ecsv, histories.h5, config.toml and run.json "
+                          "into a new run directory.")
+    runp.add_argument("config", nargs="?", default=None, metavar="CONFIG.toml",
+                      help="config file (default: all defaults; see `bhgrow config`)")
+    runp.add_argument("--trees", default=None, metavar="FILE",
+                      help="bhgrow HDF5 forest file (default: the demo forests)")
+    runp.add_argument("-o", "--output", required=True, metavar="DIR",
+                      help="run directory to create")
+    runp.add_argument("--overwrite", action="store_true",
+                      help="replace an existing run directory")
+    runp.add_argument("--no-progress", action="store_true", help="no progress bar")
+
+    sub.add_parser("config", help="print the default config with comments",
+                   description="Print the full default configuration as TOML, with the "
+                   "meaning, unit and source of every key.")
     return parser
 
 
@@ -175,8 +193,30 @@ def _cmd_trees_make(args) -> int:
     return EXIT_OK
 
 
+def _cmd_run(args) -> int:
+    from .pipeline import run
+
+    result = run(args.config, trees=args.trees, out=args.output, overwrite=args.overwrite,
+                 progress=not args.no_progress)
+    p = result.provenance
+    seeds = ", ".join(f"{k} {v}" for k, v in result.n_seeds.items() if v)
+    print(f"wrote {args.output}: {p['n_black_holes']} black holes ({seeds or 'none'}) in "
+          f"{p['n_forests']} forests, {p['n_nodes']} nodes, {p['wall_time_s']:.1f} s; "
+          f"ledger {'ok' if result.ledger['ok'] else 'FAILED'} "
+          f"(max residual {result.ledger['max_relative_residual']:.1e})")
+    return EXIT_OK if result.ledger["ok"] else EXIT_FAIL
+
+
+def _cmd_config(args) -> int:
+    from .config import default_config_text
+
+    sys.stdout.write(default_config_text())
+    return EXIT_OK
+
+
 _COMMANDS = {("trees", "check"): _cmd_trees_check, ("trees", "info"): _cmd_trees_info,
-             ("trees", "make"): _cmd_trees_make}
+             ("trees", "make"): _cmd_trees_make, ("run", None): _cmd_run,
+             ("config", None): _cmd_config}
 
 
 def main(argv=None) -> int:

@@ -88,12 +88,20 @@ __all__ = [
 #: 10^-3.5 Z_sun (Bromm et al. 2001, MNRAS 328, 969, memory) with Z_sun of bhgrow.physics.gas
 DEFAULT_Z_CRIT: float = 10.0**-3.5 * Z_SUN
 
+#: lowest redshift of pristine (Pop III / direct-collapse) seeding: below z ~ 10 the gas
+#: around new halos is mostly metal-enriched and photo-heated, and pristine star formation
+#: falls steeply (Trenti & Stiavelli 2009, ApJ 694, 879, memory)
+DEFAULT_PRISTINE_Z_MIN: float = 10.0
+
 # --- light seeds ---
 #: minimum virial temperature for H2 cooling in minihaloes [K]: ~1e3-2e3 K (Tegmark et al.
 #: 1997, ApJ 474, 1, memory); T_vir as computed by HaloStructure (mu = 0.59)
 DEFAULT_LIGHT_T_VIR_MIN_K: float = 2.0e3
-#: upper end of the minihalo range [K]: onset of atomic-hydrogen cooling
-DEFAULT_LIGHT_T_VIR_MAX_K: float = 1.0e4
+#: upper end of the range [K]: none by default, because a merger tree resolves minihaloes
+#: only if its mass resolution is ~1e5-1e6 Msun; in a coarser tree the first resolved
+#: pristine halo stands for its unresolved pristine minihalo progenitors (set 1e4 K, the
+#: onset of atomic cooling, for trees that resolve minihaloes)
+DEFAULT_LIGHT_T_VIR_MAX_K: float = float("inf")
 #: Pop III remnant mass [Msun]: ~100 Msun (Madau & Rees 2001; Volonteri 2010 review, memory)
 DEFAULT_LIGHT_SEED_MSUN: float = 100.0
 
@@ -333,9 +341,12 @@ class LightSeeds:
     t_vir_min_k : float, optional
         H2-cooling threshold, K (default 2e3; Tegmark et al. 1997 find ~1e3-2e3 K, memory).
     t_vir_max_k : float, optional
-        Upper end, K (default 1e4: atomic cooling; pristine haloes above it belong to the
-        heavy channel). A halo that jumps from below ``t_vir_min_k`` to above ``t_vir_max_k``
-        between two snapshots is not seeded by this channel; raise ``t_vir_max_k`` to allow it.
+        Upper end, K (default inf: in trees that do not resolve minihaloes the first resolved
+        pristine halo stands for its minihalo progenitors; use 1e4, atomic cooling, for
+        trees that do).
+    z_min : float, optional
+        Lowest seeding redshift (default 10; pristine star formation fades below z ~ 10,
+        Trenti & Stiavelli 2009, memory).
     z_crit : float, optional
         Metal mass fraction below which gas is pristine (default 10^-3.5 Z_sun, Bromm et al.
         2001, memory).
@@ -347,6 +358,7 @@ class LightSeeds:
 
     t_vir_min_k: float = DEFAULT_LIGHT_T_VIR_MIN_K
     t_vir_max_k: float = DEFAULT_LIGHT_T_VIR_MAX_K
+    z_min: float = DEFAULT_PRISTINE_Z_MIN
     z_crit: float = DEFAULT_Z_CRIT
     mass: SeedMass = field(
         default_factory=lambda: SeedMass("fixed", value=DEFAULT_LIGHT_SEED_MSUN))
@@ -354,7 +366,9 @@ class LightSeeds:
     def __post_init__(self) -> None:
         owner = type(self).__name__
         lo = _validate.positive(owner, "t_vir_min_k", self.t_vir_min_k)
-        hi = _validate.positive(owner, "t_vir_max_k", self.t_vir_max_k)
+        hi = float(self.t_vir_max_k) if self.t_vir_max_k == float("inf") else \
+            _validate.positive(owner, "t_vir_max_k", self.t_vir_max_k)
+        object.__setattr__(self, "z_min", _validate.non_negative(owner, "z_min", self.z_min))
         if not hi > lo:
             _validate._fail(owner, "t_vir_max_k", f"> t_vir_min_k ({lo:g})", self.t_vir_max_k)
         object.__setattr__(self, "t_vir_min_k", lo)
@@ -377,7 +391,8 @@ class LightSeeds:
         # and Z < Z_crit ~ 1e-3.5 Z_sun (Bromm et al. 2001, MNRAS 328, 969)
         mask = (~_bool(inp.has_bh, n) & _bool(inp.pristine, n)
                 & (_f64(inp.metallicity, n) < self.z_crit)
-                & (tv >= self.t_vir_min_k) & (tv < self.t_vir_max_k))
+                & (tv >= self.t_vir_min_k) & (tv < self.t_vir_max_k)
+                & (_f64(inp.z, n) >= self.z_min))
         m = self.mass.draw(_draw_uniform(inp, "light.mass"))
         return mask, np.where(mask, m, 0.0)
 
@@ -413,6 +428,8 @@ class HeavySeeds:
     ----------
     t_vir_min_k : float, optional
         Atomic-cooling threshold, K (default 1e4).
+    z_min : float, optional
+        Lowest seeding redshift (default 10; Trenti & Stiavelli 2009, memory).
     z_crit : float, optional
         Metal mass fraction ceiling (default 10^-3.5 Z_sun, Bromm et al. 2001, memory).
     j_crit_median : float, optional
@@ -433,6 +450,7 @@ class HeavySeeds:
     name: ClassVar[str] = "heavy"
 
     t_vir_min_k: float = DEFAULT_HEAVY_T_VIR_MIN_K
+    z_min: float = DEFAULT_PRISTINE_Z_MIN
     z_crit: float = DEFAULT_Z_CRIT
     j_crit_median: float = DEFAULT_J_CRIT_MEDIAN
     j_crit_sigma_dex: float = DEFAULT_J_CRIT_SIGMA_DEX
@@ -445,6 +463,7 @@ class HeavySeeds:
     def __post_init__(self) -> None:
         owner = type(self).__name__
         for name, check in (("t_vir_min_k", _validate.positive),
+                            ("z_min", _validate.non_negative),
                             ("z_crit", _validate.positive),
                             ("j_crit_median", _validate.positive),
                             ("j_crit_sigma_dex", _validate.non_negative),
@@ -488,6 +507,7 @@ class HeavySeeds:
         mask = (~_bool(inp.has_bh, n) & _bool(inp.pristine, n)
                 & (_f64(inp.metallicity, n) < self.z_crit)
                 & (_f64(inp.t_vir_k, n) >= self.t_vir_min_k)
+                & (_f64(inp.z, n) >= self.z_min)
                 & (self.j_lw(inp) > self.j_crit(inp)))
         m = self.mass.draw(_draw_uniform(inp, "heavy.mass"))
         return mask, np.where(mask, m, 0.0)

@@ -19,6 +19,7 @@ from bhgrow.errors import ParameterError
 from bhgrow.physics.gas import Z_SUN
 from bhgrow.physics.seeding import (
     CHANNEL_CODES,
+    DEFAULT_PRISTINE_Z_MIN,
     SEEDING_CHANNELS,
     SEEDING_PURPOSES,
     DenseGasSeeds,
@@ -71,7 +72,8 @@ def test_default_thresholds_memory():
     assert hm.mass.value == pytest.approx(1.420e5, rel=1e-3)
     # atomic-cooling threshold 1e4 K; direct-collapse seeds 1e5 Msun (Lodato & Natarajan 2006,
     # memory); Pop III remnants 100 Msun (Volonteri 2010 review, memory)
-    assert HeavySeeds().t_vir_min_k == 1e4 and LightSeeds().t_vir_max_k == 1e4
+    # light seeds: no upper T_vir by default (coarse trees; see LightSeeds docs)
+    assert HeavySeeds().t_vir_min_k == 1e4 and LightSeeds().t_vir_max_k == float("inf")
     assert HeavySeeds().mass.value == 1e5 and LightSeeds().mass.value == 100.0
 
 
@@ -83,7 +85,8 @@ def test_lw_background_greif_bromm():
 
 # --- channel criteria on crafted haloes ---------------------------------------------------------
 def test_light_seed_criteria():
-    ch = LightSeeds()
+    # a tree that resolves minihaloes: upper end at the onset of atomic cooling, 1e4 K
+    ch = LightSeeds(t_vir_max_k=1e4)
     rows = [
         {},                                   # 0 qualifies: pristine minihalo 5e3 K
         {"t_vir_k": 2e3},                     # 1 qualifies: at T_min (inclusive)
@@ -102,7 +105,8 @@ def test_light_seed_criteria():
 
 def test_heavy_seed_criteria_deterministic_threshold():
     # with zero scatter, J_crit = median exactly: seeds iff J_LW > J_crit
-    ch = HeavySeeds(j_crit_median=300.0, j_crit_sigma_dex=0.0, j_lw_sigma_dex=0.0)
+    # z_min = 0: row 6 (z = 0) is about the LW background, not the redshift cut
+    ch = HeavySeeds(j_crit_median=300.0, j_crit_sigma_dex=0.0, j_lw_sigma_dex=0.0, z_min=0.0)
     rows = [
         {"t_vir_k": 2e4, "j_lw": 1e3},                          # 0 qualifies
         {"t_vir_k": 2e4, "j_lw": 300.0},                        # 1 J = J_crit: not above
@@ -117,10 +121,64 @@ def test_heavy_seed_criteria_deterministic_threshold():
     np.testing.assert_array_equal(mask, [1, 0, 0, 0, 0, 0, 0, 1])
     np.testing.assert_array_equal(m, np.where(mask, 1e5, 0.0))
     # background only: J_bg(z) = 10^(2 - z/5) vs J_crit = 50 -> seeds for z < 1.505
-    ch = HeavySeeds(j_crit_median=50.0, j_crit_sigma_dex=0.0, j_lw_sigma_dex=0.0)
+    ch = HeavySeeds(j_crit_median=50.0, j_crit_sigma_dex=0.0, j_lw_sigma_dex=0.0, z_min=0.0)
     inp = make_inputs(4, t_vir_k=2e4, z=0.0)
     inp = inp._replace(z=np.array([0.0, 1.4, 1.6, 10.0]))
     np.testing.assert_array_equal(ch.seed(inp)[0], [1, 1, 0, 0])
+
+
+def test_pristine_z_min_cuts_both_channels():
+    # pristine (Pop III / direct-collapse) seeding stops below z_min, default 10 (Trenti &
+    # Stiavelli 2009, memory); z >= z_min is inclusive
+    assert DEFAULT_PRISTINE_Z_MIN == 10.0
+    assert LightSeeds().z_min == 10.0 and HeavySeeds().z_min == 10.0
+    below = np.nextafter(10.0, 0.0)
+    zs = [below, 10.0, 10.5, 9.5, 0.0, 25.0]
+    expect = [0, 1, 1, 0, 0, 1]
+    # light: pristine 5e3 K minihaloes; heavy: pristine 2e4 K haloes with tree J_LW far above
+    # a fixed J_crit, so the redshift is the only criterion that varies
+    light_inp = make_inputs(len(zs))._replace(z=np.array(zs))
+    heavy_inp = make_inputs(len(zs), t_vir_k=2e4, j_lw=1e4)._replace(z=np.array(zs))
+    heavy = dict(j_crit_median=300.0, j_crit_sigma_dex=0.0)
+    for ch, inp, m_seed in ((LightSeeds(), light_inp, 100.0),
+                            (HeavySeeds(**heavy), heavy_inp, 1e5)):
+        mask, m = ch.seed(inp)
+        np.testing.assert_array_equal(mask, expect)
+        np.testing.assert_array_equal(m, np.where(mask, m_seed, 0.0))
+    # another threshold moves the cut; z_min = 0 lets every redshift through
+    for z_min, exp in ((9.5, [1, 1, 1, 1, 0, 1]), (0.0, [1] * 6), (25.0, [0, 0, 0, 0, 0, 1])):
+        np.testing.assert_array_equal(LightSeeds(z_min=z_min).seed(light_inp)[0], exp)
+        np.testing.assert_array_equal(HeavySeeds(z_min=z_min, **heavy).seed(heavy_inp)[0], exp)
+    # apply_channels: nothing pristine is seeded below z_min, whatever the order
+    code, _ = apply_channels([HeavySeeds(**heavy), LightSeeds()], heavy_inp)
+    np.testing.assert_array_equal(code, np.where(expect, CHANNEL_CODES["heavy"], 0))
+
+
+def test_light_t_vir_max_default_and_explicit():
+    # default: no upper T_vir, so a pristine 1e5 K halo (atomic cooling, above the 1e4 K onset)
+    # is seeded, standing for its unresolved minihalo progenitors; with t_vir_max_k = 1e4
+    # (atomic-cooling onset) it is not, but a 9999 K halo still is
+    assert LightSeeds().t_vir_max_k == float("inf")
+    assert LightSeeds(t_vir_max_k=float("inf")) == LightSeeds()
+    rows = [
+        {"t_vir_k": 1e5},                       # 0 atomic cooling
+        {"t_vir_k": 1e4},                       # 1 at the onset of atomic cooling
+        {"t_vir_k": 9999.0},                    # 2 minihalo
+        {"t_vir_k": 1e7},                       # 3 very hot
+        {"t_vir_k": 1e5, "pristine": False},    # 4 not pristine
+        {"t_vir_k": 1e5, "metallicity": 1e-5},  # 5 enriched (Z_crit, Bromm et al. 2001)
+        {"t_vir_k": 1999.0},                    # 6 below the H2 threshold (Tegmark et al. 1997)
+        {"t_vir_k": 1e5, "z": 9.0},             # 7 below z_min
+    ]
+    inp = with_rows(rows)
+    mask, m = LightSeeds().seed(inp)
+    np.testing.assert_array_equal(mask, [1, 1, 1, 1, 0, 0, 0, 0])
+    np.testing.assert_array_equal(m, np.where(mask, 100.0, 0.0))
+    mask, m = LightSeeds(t_vir_max_k=1e4).seed(inp)
+    np.testing.assert_array_equal(mask, [0, 0, 1, 0, 0, 0, 0, 0])
+    np.testing.assert_array_equal(m, np.where(mask, 100.0, 0.0))
+    # with no upper end, a lower threshold above 1e4 K is valid
+    assert LightSeeds(t_vir_min_k=2e4).seed(inp)[0].tolist() == [1, 0, 0, 1, 0, 0, 0, 0]
 
 
 def test_halo_mass_seed_criteria():
@@ -163,7 +221,8 @@ def test_apply_channels_order_and_single_seed():
         {"t_vir_k": 1e3},                                           # nothing
     ]
     inp = with_rows(rows)
-    light, heavy = LightSeeds(), HeavySeeds(j_crit_sigma_dex=0.0)
+    # minihalo light seeds (T_vir < 1e4 K), so that the atomic-cooling row 0 is not a light seed
+    light, heavy = LightSeeds(t_vir_max_k=1e4), HeavySeeds(j_crit_sigma_dex=0.0)
     mass_ch, dense = HaloMassSeeds(), DenseGasSeeds(mass=SeedMass("fixed", value=3e4))
     code, m = apply_channels([light, heavy, mass_ch, dense], inp)
     c = CHANNEL_CODES
@@ -189,15 +248,23 @@ def test_apply_channels_never_seeds_a_halo_with_a_bh():
         n_h_cm3=10 ** g.uniform(-2, 2, n), m_halo_msun=10 ** g.uniform(5, 12, n),
         j_lw=np.where(g.random(n) < 0.5, np.nan, 10 ** g.uniform(0, 4, n)),
         has_bh=g.random(n) < 0.3, z=g.uniform(0, 25, n))
-    chans = [SEEDING_CHANNELS[k]() for k in ("light", "heavy", "halo_mass", "dense_gas")]
-    code, m = apply_channels(chans, inp)
-    assert not code[inp.has_bh].any()
-    assert np.all((m > 0) == (code > 0))
-    assert set(np.unique(code)) == {0, 1, 2, 3, 4}
-    # first channel wins: each code equals the first channel whose own mask fires
-    masks = np.array([ch.seed(inp)[0] for ch in chans])
-    first = np.where(masks.any(axis=0), masks.argmax(axis=0) + 1, 0)
-    np.testing.assert_array_equal(code, first)
+    # light seeds limited to minihaloes (T_vir < 1e4 K): every channel can win somewhere.
+    # With the defaults (no upper T_vir) every halo heavy seeds also qualifies for light
+    # (same pristine, Z and z_min cuts, 1e4 K >= 2e3 K), so light run first shadows heavy.
+    for light, codes in ((LightSeeds(t_vir_max_k=1e4), {0, 1, 2, 3, 4}),
+                         (LightSeeds(), {0, 1, 3, 4})):
+        chans = [light] + [SEEDING_CHANNELS[k]() for k in ("heavy", "halo_mass", "dense_gas")]
+        code, m = apply_channels(chans, inp)
+        assert not code[inp.has_bh].any()
+        assert np.all((m > 0) == (code > 0))
+        assert set(np.unique(code)) == codes
+        # first channel wins: each code equals the first channel whose own mask fires
+        masks = np.array([ch.seed(inp)[0] for ch in chans])
+        first = np.where(masks.any(axis=0), masks.argmax(axis=0) + 1, 0)
+        np.testing.assert_array_equal(code, first)
+    # ... but heavy still fires with the defaults when it runs before light
+    code, _ = apply_channels([HeavySeeds(), LightSeeds()], inp)
+    assert set(np.unique(code)) == {0, 1, 2}
 
 
 def test_apply_channels_rejects_duplicates_and_strangers():
@@ -274,7 +341,8 @@ def test_heavy_seeded_fraction_closed_form(z, tree_j):
     #   no tree value: Phi[(log J_bg - log J_med) / sqrt(s_lw^2 + s_crit^2)]
     #   tree value J:  Phi[(log J - log J_med) / s_crit]
     # (difference of independent normals; normal CDF from scipy.special.ndtr)
-    ch = HeavySeeds(j_crit_median=300.0, j_crit_sigma_dex=0.5, j_lw_sigma_dex=0.6)
+    # z_min = 0: the fraction at z = 0 and 5 tests the LW draws, not the redshift cut
+    ch = HeavySeeds(j_crit_median=300.0, j_crit_sigma_dex=0.5, j_lw_sigma_dex=0.6, z_min=0.0)
     inp = make_inputs(N_DRAWS, t_vir_k=2e4, z=z, j_lw=tree_j)
     frac = ch.seed(inp)[0].mean()
     if np.isnan(tree_j):
@@ -330,8 +398,11 @@ def test_scalar_redshift_broadcasts():
      "`hi` of SeedMass must be > lo (100); got 10.0"),
     (lambda: SeedMass("log_normal", median=1e5, sigma_dex=-0.1),
      "`sigma_dex` of SeedMass must be >= 0; got -0.1"),
-    (lambda: LightSeeds(t_vir_min_k=2e4),
+    (lambda: LightSeeds(t_vir_min_k=2e4, t_vir_max_k=1e4),
      "`t_vir_max_k` of LightSeeds must be > t_vir_min_k (20000); got 10000.0"),
+    (lambda: LightSeeds(z_min=-1.0), "`z_min` of LightSeeds must be >= 0; got -1.0"),
+    (lambda: HeavySeeds(z_min=-0.5), "`z_min` of HeavySeeds must be >= 0; got -0.5"),
+    (lambda: LightSeeds(z_min=float("nan")), "`z_min` of LightSeeds must be finite; got nan"),
     (lambda: LightSeeds(mass=100.0), "`mass` of LightSeeds must be a SeedMass; got 100.0"),
     (lambda: HeavySeeds(j_crit_median=0.0), "`j_crit_median` of HeavySeeds must be > 0; got 0.0"),
     (lambda: HeavySeeds(j_lw_sigma_dex=float("inf")),

@@ -1,0 +1,422 @@
+"""The snapshot loop: walks forests oldest to newest, all halos of a snapshot at once.
+
+The engine owns no physics formulas: it calls the model's components (see
+:class:`bhgrow.config.Model` for the calling order) on the float arrays of one snapshot
+slice, and moves state down the trees.
+
+Time intervals
+--------------
+A node owns the interval from its own time to its descendant's, ``dt = t(desc) - t(node)``
+(roots: none). Over it the node's reservoir receives the smooth growth of the descendant,
+``f_b,eff * max(M_desc - sum M_progenitors(desc), 0)``, spread evenly, if the node is the
+descendant's main progenitor; other progenitors get no inflow (their halo is being
+accreted). A halo without progenitors starts with ``f_b,eff * M`` of pristine gas.
+
+Per snapshot slice
+------------------
+1. halo properties; new halos get their initial gas;
+2. seeding (halos without a central black hole; channels in config order);
+3. reservoir and black holes over ``dt``: halos without a central black hole take one exact
+   closed-form reservoir step; halos with one take ``n`` substeps (from the fastest
+   gas / Bondi / Eddington time-scale of the slice, capped by ``run.max_substeps``), each:
+   reservoir step -> zone density and sound speed (frozen) -> closed-form Bondi/Eddington
+   growth capped by the reservoir -> feedback removes gas -> spin update;
+4. state passes to descendants: gas, stars and metals add up (``np.add.at``), the
+   "polluted" flag (a progenitor formed stars or held a black hole) propagates with a
+   maximum; gas above the descendant's baryon share is removed and recorded.
+
+Black holes
+-----------
+A struct-of-arrays table (:class:`BlackHoles`) with a host row per black hole. When a host
+passes to its descendant, its black holes follow. The central black hole of the main
+progenitor stays central; central black holes of other progenitors become *wandering*
+(status ``wandering``: kept, not accreting, not merged) — unless the descendant receives no
+central from its main progenitor, in which case the most massive incoming central becomes
+its central (it would sink to the centre first). Black holes of halos that end before the
+final snapshot (a root at an earlier snapshot) stop with status ``host_ended``.
+
+Ledger
+------
+Per black hole: seed mass and accreted growth (mass gained, after the radiated fraction).
+Per forest: ``sum final mass = sum seed mass + sum growth`` must hold to round-off.
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from . import rng
+from .config import Config, Model, RunSettings
+from .constants import T_EDD_GYR
+from .cosmology import Cosmology
+from .physics import accretion as acc
+from .physics import seeding as sd
+from .physics.gas import dynamical_time_gyr
+from .trees.forest import Forest
+
+STATUS_NAMES = ("central", "wandering", "host_ended")
+CENTRAL, WANDERING, HOST_ENDED = 0, 1, 2
+CHANNEL_NAMES = {code: name for name, code in sd.CHANNEL_CODES.items()}
+# purposes of the engine's random draws (seeding uses its own, documented in seeding.py)
+_P_SPIN = 11
+_GYR_PER_YR = 1e-9
+
+
+@dataclass
+class BlackHoles:
+    """Struct-of-arrays black-hole table (grows as seeds form)."""
+
+    bh_id: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
+    forest_id: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
+    host: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
+    mass: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    spin: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    channel: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int8))
+    seed_z: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    seed_mass: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    growth: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    status: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int8))
+    last_mdot: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    end_z: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    host_mass: np.ndarray = field(default_factory=lambda: np.zeros(0))
+
+    def __len__(self) -> int:
+        return int(self.bh_id.size)
+
+    def append(self, **cols) -> None:
+        for name, arr in cols.items():
+            cur = getattr(self, name)
+            setattr(self, name, np.concatenate([cur, np.asarray(arr, dtype=cur.dtype)]))
+
+
+@dataclass
+class History:
+    """Per-black-hole records, one per snapshot a black hole is alive at."""
+
+    parts: list = field(default_factory=list)
+
+    def record(self, bh_id, t, z, mass, mdot, edd_ratio, gas):
+        self.parts.append((bh_id.copy(), np.full(bh_id.size, t), np.full(bh_id.size, z),
+                           mass.copy(), mdot.copy(), edd_ratio.copy(), gas.copy()))
+
+    def columns(self) -> dict:
+        names = ("bh_id", "t_gyr", "z", "mass_msun", "mdot_msun_yr", "eddington_ratio",
+                 "host_gas_msun")
+        if not self.parts:
+            return {n: np.zeros(0) for n in names}
+        cols = {n: np.concatenate([p[i] for p in self.parts]) for i, n in enumerate(names)}
+        order = np.lexsort((cols["t_gyr"], cols["bh_id"]))
+        return {n: v[order] for n, v in cols.items()}
+
+
+@dataclass
+class EngineResult:
+    """What one engine pass over a forest (or chunk) produces."""
+
+    black_holes: BlackHoles
+    history: History
+    forest: Forest
+    ledger: dict
+    baryons: dict
+    n_seeds: dict
+    wall_s: float
+
+
+def run_forest(forest: Forest, model: Model, run: RunSettings,
+               cosmo: Cosmology) -> EngineResult:
+    """Grow black holes through every forest of ``forest``.
+
+    Parameters
+    ----------
+    forest : Forest
+    model : Model
+    run : RunSettings
+    cosmo : Cosmology
+
+    Returns
+    -------
+    EngineResult
+    """
+    t_start = time.perf_counter()
+    n = forest.n_nodes
+    fb = cosmo.fb
+    z_node = forest.z
+    t_snap = cosmo.age_gyr(forest.snapshots.z)
+    snap_pos = np.searchsorted(forest.snapshots.snap, forest.snap)
+    t_node = t_snap[snap_pos]
+    desc = forest.desc_index
+    has_desc = desc >= 0
+    dt = np.where(has_desc, t_node[np.maximum(desc, 0)] - t_node, 0.0)
+    mass_h = forest.mass_msun
+
+    # smooth growth of each descendant, credited to its main progenitor
+    prog_sum = np.bincount(desc[has_desc], weights=mass_h[has_desc], minlength=n)
+    n_prog = np.diff(forest.prog_offsets)
+    smooth = np.where(n_prog > 0, np.maximum(mass_h - prog_sum, 0.0), 0.0)
+    is_main = np.zeros(n, dtype=bool)
+    is_main[forest.main_prog[forest.main_prog >= 0]] = True
+    smooth_for_node = np.where(is_main & has_desc, smooth[np.maximum(desc, 0)], 0.0)
+
+    gas = np.zeros(n)
+    stars = np.zeros(n)
+    metals = np.zeros(n)
+    polluted = np.zeros(n, dtype=bool)
+    stripped = np.zeros(n)     # gas removed at halo merging (baryon cap), per descendant
+    outflow = np.zeros(n)      # SN + AGN outflow over the node's interval
+    node_keys = rng.stream_keys(run.seed, forest.node_id)
+
+    bh = BlackHoles()
+    hist = History()
+    n_seeds = {name: 0 for name in sd.CHANNEL_CODES}
+    channels = [c for _, c in model.seeding]
+
+    n_snap = len(forest.snapshots)
+    for k in range(n_snap):
+        sl = forest.snapshot_slice(k)
+        if sl.stop == sl.start:
+            continue
+        rows = np.arange(sl.start, sl.stop)
+        z = float(forest.snapshots.z[k])
+        m = mass_h[sl]
+        props = model.halo.properties(m, z, cosmo)
+        r_vir = np.asarray(props.r_vir_kpc, dtype=float)
+        v_c = np.asarray(props.v_c_kms, dtype=float)
+        t_vir = np.asarray(props.t_vir_k, dtype=float)
+        v_esc = np.asarray(props.v_esc_kms, dtype=float)
+        fb_eff = np.asarray(model.reionization.baryon_fraction(m, z, fb), dtype=float)
+        new = n_prog[sl] == 0
+        gas[sl] = np.where(new, fb_eff * m, gas[sl])
+
+        # --- black holes hosted in this slice ----------------------------------------------
+        in_slice = (bh.host >= sl.start) & (bh.host < sl.stop) if len(bh) else np.zeros(0, bool)
+        central = in_slice & (bh.status == CENTRAL)
+        has_central = np.zeros(rows.size, dtype=bool)
+        has_central[bh.host[central] - sl.start] = True
+
+        # --- seeding ------------------------------------------------------------------------
+        rho, cs, n_h = model.gas_zone.state(gas[sl], r_vir, t_vir)
+        if channels:
+            metal_z = np.divide(metals[sl], gas[sl], out=np.zeros(rows.size),
+                                where=gas[sl] > 0)
+            j_lw = forest.extra["j_lw"][sl] if "j_lw" in forest.extra else np.full(rows.size,
+                                                                                   np.nan)
+            inp = sd.SeedingInputs(m_halo_msun=m, z=np.full(rows.size, z), t_vir_k=t_vir,
+                                   pristine=~polluted[sl], metallicity=metal_z,
+                                   n_h_cm3=np.asarray(n_h, dtype=float), gas_msun=gas[sl],
+                                   j_lw=j_lw, has_bh=has_central, keys=node_keys[sl])
+            code, seed_mass = sd.apply_channels(channels, inp)
+            code = np.asarray(code)
+            fire = np.flatnonzero(code > 0)
+            if fire.size:
+                # a halo seeds at most once, so the seeding node's id names the black hole
+                # whatever the chunking
+                bh.append(bh_id=forest.node_id[sl][fire], forest_id=forest.forest_id[sl][fire],
+                          host=rows[fire], mass=np.asarray(seed_mass)[fire],
+                          spin=np.zeros(fire.size), channel=code[fire],
+                          seed_z=np.full(fire.size, z), seed_mass=np.asarray(seed_mass)[fire],
+                          growth=np.zeros(fire.size), status=np.full(fire.size, CENTRAL),
+                          last_mdot=np.zeros(fire.size), end_z=np.full(fire.size, z),
+                          host_mass=m[fire])
+                for c, cnt in zip(*np.unique(code[fire], return_counts=True)):
+                    n_seeds[CHANNEL_NAMES[int(c)]] += int(cnt)
+                has_central[fire] = True
+                in_slice = np.r_[in_slice, np.ones(fire.size, bool)]
+                central = np.r_[central, np.ones(fire.size, bool)]
+
+        # --- history at this snapshot (state on arrival, rate over the previous step) -------
+        alive = np.flatnonzero(in_slice)
+        if run.histories and alive.size:
+            eps_a = model.efficiency.efficiency(bh.spin[alive])
+            hist.record(bh.bh_id[alive], float(t_snap[k]), z, bh.mass[alive],
+                        bh.last_mdot[alive] * _GYR_PER_YR,
+                        acc.eddington_ratio(bh.last_mdot[alive], bh.mass[alive], eps_a),
+                        gas[bh.host[alive]])
+        bh.end_z[alive] = z
+        bh.host_mass[alive] = mass_h[bh.host[alive]]
+
+        # --- reservoir + accretion over dt ----------------------------------------------------
+        dts = dt[sl]
+        inflow = fb_eff * smooth_for_node[sl] / np.where(dts > 0, dts, 1.0)
+        r_zone = model.gas_zone.radius_frac * r_vir
+        t_dyn = np.asarray(dynamical_time_gyr(r_zone, v_c), dtype=float)
+        step_rows = dts > 0
+        quiet = step_rows & ~has_central
+        if quiet.any():
+            q = np.flatnonzero(quiet)
+            res = model.star_formation.step(gas[sl][q], stars[sl][q], metals[sl][q],
+                                            inflow[q], t_dyn[q], v_c[q], dts[q])
+            gas[rows[q]], stars[rows[q]], metals[rows[q]] = res.gas, res.stars, res.metals
+            outflow[rows[q]] += res.outflow_msun
+        active = step_rows & has_central
+        cbh = np.flatnonzero(central)
+        cbh = cbh[step_rows[bh.host[cbh] - sl.start]] if cbh.size else cbh
+        if active.any():
+            _grow(model, run, bh, cbh, rows, sl, active, gas, stars, metals, outflow, inflow,
+                  t_dyn, v_c, v_esc, r_vir, t_vir, dts, node_keys, k)
+        else:
+            bh.last_mdot[cbh] = 0.0
+
+        # --- pass state down the trees ----------------------------------------------------------
+        go = rows[has_desc[sl]]
+        d = desc[go]
+        np.add.at(gas, d, gas[go])
+        np.add.at(stars, d, stars[go])
+        np.add.at(metals, d, metals[go])
+        hosted = np.zeros(rows.size, dtype=bool)
+        if len(bh):
+            hosted[bh.host[in_slice] - sl.start] = True
+        flag = polluted[go] | (stars[go] > 0) | hosted[go - sl.start]
+        np.maximum.at(polluted, d, flag)
+        moved = _move_black_holes(bh, in_slice, desc, forest, k, n_snap)
+        # baryon cap on the receiving descendants: gas above f_b M_desc is stripped (applied
+        # at every arrival, so a descendant fed from several snapshots is capped each time)
+        ud = np.unique(d)
+        if ud.size:
+            bh_in = np.bincount(bh.host[moved], weights=bh.mass[moved], minlength=n)[ud] \
+                if moved.size else 0.0
+            excess = gas[ud] + stars[ud] + bh_in - fb * mass_h[ud]
+            cut = np.clip(excess, 0.0, gas[ud])
+            gas[ud] -= cut
+            stripped[ud] += cut
+
+    # --- end: ledger and baryon check ---------------------------------------------------------
+    ledger = _ledger(bh, forest)
+    baryon = _baryon_check(forest, gas, stars, bh, fb)
+    baryon["stripped_msun"] = float(stripped.sum())
+    baryon["outflow_msun"] = float(outflow.sum())
+    return EngineResult(black_holes=bh, history=hist, forest=forest, ledger=ledger,
+                        baryons=baryon, n_seeds=n_seeds, wall_s=time.perf_counter() - t_start)
+
+
+def _grow(model, run, bh, cbh, rows, sl, active, gas, stars, metals, outflow, inflow, t_dyn,
+          v_c, v_esc, r_vir, t_vir, dts, node_keys, k):
+    """Substepped reservoir + accretion + feedback for halos with a central black hole."""
+    a_rows = np.flatnonzero(active)           # local rows
+    loc = bh.host[cbh] - sl.start              # local row of each central BH
+    # position of each BH's host within a_rows
+    pos = np.searchsorted(a_rows, loc)
+    hl = a_rows[pos]                           # local host row of each BH (one central each)
+    hrow = rows[hl]                            # global host row
+    g = gas[hrow].copy()
+    s = stars[hrow].copy()
+    zm = metals[hrow].copy()
+    I, td, vc, ve = inflow[hl], t_dyn[hl], v_c[hl], v_esc[hl]
+    rv, tv = r_vir[hl], t_vir[hl]
+    h_total = dts[hl]
+
+    m_bh = bh.mass[cbh].copy()
+    m_start = m_bh.copy()
+    # one accretion episode per interval: its disc orientation (chaotic mode) and hence the
+    # radiative efficiency are fixed over the interval; the spin is updated once at its end
+    # (Bardeen's coherent invariant makes that exact for any number of substeps)
+    u = rng.uniform(rng.stream_keys(run.seed, bh.bh_id[cbh]), k, _P_SPIN)
+    eps = np.asarray(model.efficiency.efficiency(model.spin.episode_spin(bh.spin[cbh], u)),
+                     dtype=float)
+    edd = np.asarray(model.eddington.coefficient(eps), dtype=float)        # 1/Gyr
+    per_unit = 1.0 + np.asarray(model.feedback.gas_removed(np.ones(cbh.size), eps, ve),
+                                dtype=float)
+    # substeps per halo from its own fastest time-scale (black-hole e-folding, draining of
+    # the reservoir by accretion + feedback), so a halo's result never depends on which
+    # other halos share its snapshot or chunk
+    rho, cs, _ = model.gas_zone.state(g, rv, tv)
+    A = np.asarray(model.accretion.coefficient(rho, cs, 0.0), dtype=float)
+    mdot = np.minimum(A * m_bh, edd) * m_bh
+    rate = (1 - eps) * mdot / m_bh + np.divide(mdot * per_unit, g, out=np.zeros(cbh.size),
+                                               where=g > 0)
+    n_sub = np.clip(np.ceil(rate * h_total / run.substep_safety), 1, run.max_substeps)
+    h = h_total / n_sub
+    grown = np.zeros(cbh.size)
+    taken = np.zeros(cbh.size)
+    out = np.zeros(cbh.size)
+    for j in range(int(n_sub.max())):
+        live = np.flatnonzero(n_sub > j)
+        res = model.star_formation.step(g[live], s[live], zm[live], I[live], td[live],
+                                        vc[live], h[live])
+        g[live], s[live], zm[live] = res.gas, res.stars, res.metals
+        out[live] += res.outflow_msun
+        rho, cs, _ = model.gas_zone.state(g[live], rv[live], tv[live])
+        A = np.asarray(model.accretion.coefficient(rho, cs, 0.0), dtype=float)
+        # accretion and the outflow it drives draw on the same reservoir within the
+        # substep: each Msun accreted removes `per_unit - 1` Msun more, so the black hole can
+        # take at most gas / per_unit (feedback self-regulates growth; King 2003)
+        m_new, accreted = acc.grow_frozen(m_bh[live], A, edd[live], eps[live], h[live],
+                                          g[live] / per_unit[live])
+        m_new = np.asarray(m_new, dtype=float)
+        accreted = np.asarray(accreted, dtype=float)
+        gl = np.maximum(g[live] - accreted, 0.0)
+        removed = np.minimum(accreted * (per_unit[live] - 1.0), gl)
+        g[live] = gl - removed
+        out[live] += removed
+        grown[live] += m_new - m_bh[live]
+        taken[live] += accreted
+        m_bh[live] = m_new
+    bh.spin[cbh] = model.spin.update(bh.spin[cbh], m_start, m_bh, u)
+    bh.growth[cbh] += grown
+    bh.mass[cbh] = bh.mass[cbh] + grown
+    bh.last_mdot[cbh] = np.divide(taken, h_total, out=np.zeros(cbh.size), where=h_total > 0)
+    gas[hrow], stars[hrow], metals[hrow] = g, s, zm
+    outflow[hrow] += out
+
+
+def _move_black_holes(bh: BlackHoles, in_slice, desc, forest: Forest, k: int,
+                      n_snap: int) -> np.ndarray:
+    """Black holes of this slice follow their hosts to the descendants (see module notes).
+
+    Returns the table indices of the black holes that moved.
+    """
+    idx = np.flatnonzero(in_slice)
+    if idx.size == 0:
+        return idx
+    d = desc[bh.host[idx]]
+    ends = d < 0
+    if k < n_snap - 1:
+        bh.status[idx[ends]] = HOST_ENDED       # host left the tree before the final snapshot
+    moving = idx[~ends]
+    if moving.size == 0:
+        return moving
+    old = bh.host[moving]
+    new = desc[old]
+    from_main = forest.main_prog[new] == old
+    cen = bh.status[moving] == CENTRAL
+    demote = cen & ~from_main                    # centrals of other progenitors wander ...
+    gets_central = np.zeros(forest.n_nodes, dtype=bool)
+    gets_central[new[cen & from_main]] = True
+    cand = np.flatnonzero(demote & ~gets_central[new])
+    promote = np.zeros(moving.size, dtype=bool)  # ... unless the descendant has no central
+    if cand.size:
+        order = np.lexsort((bh.bh_id[moving[cand]], -bh.mass[moving[cand]], new[cand]))
+        c_sorted = cand[order]
+        first = np.r_[True, new[c_sorted][1:] != new[c_sorted][:-1]]
+        promote[c_sorted[first]] = True
+    bh.status[moving[demote & ~promote]] = WANDERING
+    bh.host[moving] = new
+    return moving
+
+
+def _ledger(bh: BlackHoles, forest: Forest) -> dict:
+    """Per-forest mass ledger: sum final = sum seed + sum growth (relative residual)."""
+    fi = np.searchsorted(forest.forest_ids, bh.forest_id)
+    nf = forest.n_forests
+    final = np.bincount(fi, weights=bh.mass, minlength=nf)
+    seeds = np.bincount(fi, weights=bh.seed_mass, minlength=nf)
+    growth = np.bincount(fi, weights=bh.growth, minlength=nf)
+    resid = np.abs(final - seeds - growth) / np.maximum(final, 1e-300)
+    worst = float(resid.max()) if nf else 0.0
+    return {"max_relative_residual": worst, "ok": bool(worst < 1e-10),
+            "total_final_msun": float(final.sum()), "total_seed_msun": float(seeds.sum()),
+            "total_growth_msun": float(growth.sum()), "per_forest_residual": resid}
+
+
+def _baryon_check(forest: Forest, gas, stars, bh: BlackHoles, fb: float) -> dict:
+    """Largest relative excess of gas + stars + black holes over f_b M_halo (final roots)."""
+    bh_mass = np.zeros(forest.n_nodes)
+    on = bh.host >= 0
+    np.add.at(bh_mass, bh.host[on], bh.mass[on])
+    roots = forest.desc_index < 0
+    total = gas[roots] + stars[roots] + bh_mass[roots]
+    cap = fb * forest.mass_msun[roots]
+    excess = float(np.max((total - cap) / cap)) if roots.any() else 0.0
+    return {"max_relative_excess": excess, "ok": bool(excess <= 1e-6)}

@@ -1,0 +1,194 @@
+"""From a config and a tree file to a finished run directory (what `bhgrow run` does)."""
+
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from . import __version__
+from .config import Config, load_config, write_toml
+from .cosmology import Cosmology
+from .engine import CHANNEL_NAMES, STATUS_NAMES, BlackHoles, run_forest
+from .errors import BhgrowInputError
+from .output import RunDirectory, file_sha256, write_ecsv, write_histories, write_json
+from .trees.forest import Forest
+from .trees.io import load_forest
+
+DEMO_TREES = Path(__file__).resolve().parents[1] / "trees_demo" / "tarn_hollow.h5"
+
+
+def demo_trees_path() -> Path:
+    """The bundled demo forests (needs the source checkout, e.g. `pip install -e .`)."""
+    if not DEMO_TREES.exists():
+        raise BhgrowInputError(f"demo forests not found at {DEMO_TREES}; install bhgrow from "
+                               f"its source tree (pip install -e .) or pass --trees FILE",
+                               rule="no_file")
+    return DEMO_TREES
+
+
+@dataclass
+class RunResult:
+    """Everything a run produced, in memory."""
+
+    black_holes: "object"        # astropy Table
+    histories: dict              # column arrays
+    ledger: dict
+    baryons: dict
+    n_seeds: dict
+    provenance: dict
+    forest: Forest
+
+
+def _merge(parts: list) -> BlackHoles:
+    out = BlackHoles()
+    for p in parts:
+        out.append(**{k: getattr(p, k) for k in out.__dataclass_fields__})
+    return out
+
+
+def run_model(forest: Forest, config: Config | None = None, *, progress: bool = False,
+              trees_path=None) -> RunResult:
+    """Run the engine over a forest (in chunks of whole forests) and collect the results.
+
+    Parameters
+    ----------
+    forest : Forest
+    config : Config, optional
+        Default config when None.
+    progress : bool
+        Show a progress bar over chunks.
+    trees_path : path, optional
+        Recorded in the provenance (with its SHA-256).
+    """
+    from astropy.table import Table
+    from tqdm.auto import tqdm
+
+    config = config or load_config(None)
+    cosmo = Cosmology.from_name(config.run.cosmology)
+    t0 = time.perf_counter()
+    chunks = list(forest.chunks(config.run.chunk_nodes)) if forest.n_nodes > \
+        config.run.chunk_nodes else [forest]
+    results = [run_forest(c, config.model, config.run, cosmo)
+               for c in tqdm(chunks, desc="forests", unit="chunk",
+                             disable=not progress or len(chunks) < 2)]
+    bh = _merge([r.black_holes for r in results])
+    hist_cols = [r.history.columns() for r in results]
+    hist = {k: np.concatenate([h[k] for h in hist_cols]) for k in hist_cols[0]}
+    order = np.lexsort((hist["t_gyr"], hist["bh_id"]))
+    hist = {k: v[order] for k, v in hist.items()}
+    o = np.argsort(bh.bh_id, kind="stable")
+    weights = forest.volume_weight() if (forest.forest_weight is not None
+                                         or forest.box_mpc is not None) else None
+    w = (weights[np.searchsorted(forest.forest_ids, bh.forest_id)] if weights is not None
+         else np.full(len(bh), np.nan))
+    table = Table()
+    table["bh_id"] = bh.bh_id[o]
+    table["forest_id"] = bh.forest_id[o]
+    table["seed_channel"] = np.array([CHANNEL_NAMES[int(c)] for c in bh.channel[o]],
+                                     dtype="U12") if len(bh) else np.zeros(0, "U12")
+    table["seed_z"] = bh.seed_z[o]
+    table["seed_mass_msun"] = bh.seed_mass[o]
+    table["final_mass_msun"] = bh.mass[o]
+    table["accreted_msun"] = bh.growth[o]
+    table["final_spin"] = bh.spin[o]
+    table["status"] = np.array([STATUS_NAMES[int(s)] for s in bh.status[o]],
+                               dtype="U12") if len(bh) else np.zeros(0, "U12")
+    table["final_z"] = bh.end_z[o]
+    table["host_mass_msun"] = bh.host_mass[o]
+    table["weight_mpc3"] = w[o]
+    units = {"seed_mass_msun": "solMass", "final_mass_msun": "solMass",
+             "accreted_msun": "solMass", "host_mass_msun": "solMass", "weight_mpc3": "Mpc-3"}
+    for k, u in units.items():
+        table[k].unit = u
+    descr = {
+        "bh_id": "black-hole id (= node_id of the halo it was seeded in)",
+        "forest_id": "forest of the host halo",
+        "seed_channel": "seeding channel: light, heavy, halo_mass or dense_gas",
+        "seed_z": "redshift at seeding",
+        "seed_mass_msun": "seed mass [Msun]",
+        "final_mass_msun": "mass at final_z [Msun]",
+        "accreted_msun": "mass gained by accretion after radiative losses [Msun]",
+        "final_spin": "dimensionless spin at final_z",
+        "status": "central, wandering (kept in a merged host; not accreting) or host_ended",
+        "final_z": "redshift of the last snapshot the black hole was followed to",
+        "host_mass_msun": "host halo mass at final_z [Msun]",
+        "weight_mpc3": "comoving number density the forest represents [Mpc^-3]",
+    }
+    for k, d in descr.items():
+        table[k].description = d
+    wall = time.perf_counter() - t0
+    ledger = _combine_ledger([r.ledger for r in results])
+    baryons = {"max_relative_excess": max(r.baryons["max_relative_excess"] for r in results),
+               "stripped_msun": sum(r.baryons["stripped_msun"] for r in results),
+               "outflow_msun": sum(r.baryons["outflow_msun"] for r in results)}
+    baryons["tolerance"] = 1e-6
+    baryons["ok"] = bool(baryons["max_relative_excess"] <= baryons["tolerance"])
+    n_seeds = {k: sum(r.n_seeds[k] for r in results) for k in results[0].n_seeds}
+    prov = {"bhgrow_version": __version__, "seed": config.run.seed,
+            "cosmology": cosmo.to_dict(), "trees": str(trees_path) if trees_path else None,
+            "trees_sha256": file_sha256(trees_path) if trees_path else None,
+            "n_forests": forest.n_forests, "n_nodes": forest.n_nodes,
+            "n_chunks": len(chunks), "wall_time_s": wall,
+            "nodes_per_s": forest.n_nodes / wall if wall > 0 else None,
+            "n_black_holes": len(bh), "seeds_per_channel": n_seeds,
+            "ledger": {k: v for k, v in ledger.items() if k != "per_forest_residual"},
+            "baryons": baryons}
+    return RunResult(black_holes=table, histories=hist, ledger=ledger, baryons=baryons,
+                     n_seeds=n_seeds, provenance=prov, forest=forest)
+
+
+def _combine_ledger(parts: list) -> dict:
+    worst = max(p["max_relative_residual"] for p in parts)
+    return {"max_relative_residual": worst, "ok": bool(worst < 1e-10),
+            "tolerance": 1e-10,
+            "total_final_msun": sum(p["total_final_msun"] for p in parts),
+            "total_seed_msun": sum(p["total_seed_msun"] for p in parts),
+            "total_growth_msun": sum(p["total_growth_msun"] for p in parts),
+            "per_forest_residual": np.concatenate([p["per_forest_residual"] for p in parts])}
+
+
+def write_run(result: RunResult, config: Config, out, *, overwrite: bool = False) -> Path:
+    """Write a run directory atomically (see :mod:`bhgrow.output`)."""
+    with RunDirectory(out, overwrite=overwrite) as tmp:
+        write_ecsv(result.black_holes, tmp / "black_holes.ecsv",
+                   meta={"made_by": f"bhgrow {__version__}", "seed": config.run.seed,
+                         "trees": result.provenance.get("trees")})
+        if config.run.histories:
+            write_histories(result.histories, tmp / "histories.h5")
+        (tmp / "config.toml").write_text(write_toml(config.table))
+        write_json(result.provenance, tmp / "run.json")
+    return Path(out)
+
+
+def run(config=None, *, trees=None, out=None, overwrite: bool = False,
+        progress: bool = False) -> RunResult:
+    """Load trees (default: the demo forests), run the model, and optionally write ``out``.
+
+    Parameters
+    ----------
+    config : Config, path or None
+        A loaded config, a TOML path, or None for all defaults.
+    trees : Forest, path or None
+    out : path, optional
+        Run directory to write (refused if it exists unless ``overwrite``).
+    """
+    if not isinstance(config, Config):
+        config = load_config(config)
+    if isinstance(trees, Forest):
+        forest, path = trees, None
+    else:
+        path = Path(trees) if trees is not None else demo_trees_path()
+        forest = load_forest(path)
+    if out is not None:
+        out = Path(out)
+        if out.exists() and not overwrite:   # fail before the work, not after
+            raise BhgrowInputError(f"{out}: run directory exists; refusing to overwrite it "
+                                   f"(choose another -o or pass --overwrite)",
+                                   source=str(out), rule="exists")
+    result = run_model(forest, config, progress=progress, trees_path=path)
+    if out is not None:
+        write_run(result, config, out, overwrite=overwrite)
+    return result
