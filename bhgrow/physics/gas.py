@@ -133,9 +133,10 @@ DEFAULT_HOT_T_VIR_K: float = 6.0e5
 #: held at T_gas by cooling and heating)
 DEFAULT_GAMMA: float = 1.0
 
-# Series length of the phi-functions below x < _X_SERIES (terms x^k / k! < 1e-20 at 0.5)
-_X_SERIES: float = 0.5
-_N_SERIES: int = 24
+# Taylor series of the phi-functions below x < _X_SERIES (truncation 0.05^12/12! ~ 5e-25);
+# above it the closed forms lose at most ~1e-16/x^3 ~ 1e-12 to cancellation
+_X_SERIES: float = 0.05
+_N_SERIES: int = 12
 
 
 # =============================================================================================
@@ -292,7 +293,7 @@ def _decay_integrals(x: np.ndarray):
 
     Returns ``e^-x``, ``phi1 = (1 - e^-x)/x``, ``phi2 = (x - 1 + e^-x)/x^2``,
     ``psi = (1 - (1+x) e^-x)/x^2`` and ``chi = (x - 2 + (2+x) e^-x)/x^3``; their limits at
-    ``x = 0`` are 1, 1, 1/2, 1/2, 1/6. Below ``x = 0.5`` a 24-term Taylor series is used.
+    ``x = 0`` are 1, 1, 1/2, 1/2, 1/6. Below ``x = 0.05`` a 12-term Taylor series is used.
     """
     shape = np.shape(x)
     x = np.atleast_1d(np.asarray(x, dtype=np.float64))
