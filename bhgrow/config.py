@@ -24,6 +24,8 @@ from pathlib import Path
 from . import _validate
 from .errors import BhgrowInputError, ParameterError
 from .physics import accretion as acc
+from .physics import dynamics as dyn
+from .physics import remnants as rem
 from .physics import feedback as fb
 from .physics import gas
 from .physics import seeding as sd
@@ -95,7 +97,9 @@ class Model:
     5. ``seeding`` — channels in list order; the first that fires seeds the halo;
     6. ``accretion`` (+ ``eddington``, ``efficiency``) — piecewise-analytic growth per substep;
     7. ``feedback`` — reservoir gas removed by the accretion luminosity;
-    8. ``spin`` — spin update after the substep's growth.
+    8. ``spin`` — spin update at the end of the interval;
+    9. ``clock`` — merger delay of a satellite's black hole (friction, hardening, GW);
+    10. ``spin_draw`` and ``remnant`` — spins at coalescence, remnant mass, spin and kick.
     """
 
     halo: HaloStructure
@@ -108,6 +112,9 @@ class Model:
     efficiency: "acc.RadiativeEfficiency"
     spin: "acc.SpinEvolution"
     feedback: object
+    clock: "dyn.MergerClock"
+    spin_draw: "rem.SpinDraw"
+    remnant: "rem.RemnantModel"
 
 
 @dataclass(frozen=True)
@@ -129,6 +136,9 @@ _SINGLE = {
     "eddington": (acc.EddingtonLimit, "Eddington cap"),
     "efficiency": (acc.RadiativeEfficiency, "radiative efficiency"),
     "spin": (acc.SpinEvolution, "black-hole spin evolution"),
+    "mergers": (dyn.MergerClock, "merger delay: dynamical friction, hardening, GW inspiral"),
+    "spin_draw": (rem.SpinDraw, "spin magnitudes and orientations at coalescence"),
+    "remnant": (rem.RemnantModel, "numerical-relativity fits for the remnant"),
 }
 # choice sections: key naming the choice, registry, default choice
 _CHOICE = {
@@ -243,7 +253,8 @@ def from_table(table: dict, source: str = "<config>") -> Config:
                   seeding=tuple((c, channels[c]) for c in chosen),
                   accretion=built["accretion"], eddington=built["eddington"],
                   efficiency=built["efficiency"], spin=built["spin"],
-                  feedback=built["feedback"])
+                  feedback=built["feedback"], clock=built["mergers"],
+                  spin_draw=built["spin_draw"], remnant=built["remnant"])
     return Config(run=built["run"], model=model, table=resolved_table(built["run"], model,
                                                                       channels, table))
 
@@ -282,8 +293,9 @@ def resolved_table(run: RunSettings, model: Model, channels: dict, raw: dict) ->
     """The complete config (every key, defaults filled in) as a plain table."""
     t = {"run": _component_table(run)}
     for name in ("halo", "reionization", "star_formation", "gas_zone", "eddington",
-                 "efficiency", "spin"):
+                 "efficiency", "spin", "spin_draw", "remnant"):
         t[name] = _component_table(getattr(model, name))
+    t["mergers"] = _component_table(model.clock)
     t["seeding"] = {"channels": [c for c, _ in model.seeding]}
     t["seeding"].update({k: _component_table(v) for k, v in channels.items()})
     for name, (key, registry, default, _doc) in _CHOICE.items():
@@ -396,6 +408,9 @@ def default_config_text() -> str:
         for k, cls in registry.items():
             _emit(lines, f"{name}.{k}", cls(), (cls.__doc__ or "").strip().splitlines()[0])
     for name in ("eddington", "efficiency", "spin"):
+        _emit(lines, name, getattr(m, name), _SINGLE[name][1])
+    _emit(lines, "mergers", m.clock, _SINGLE["mergers"][1])
+    for name in ("spin_draw", "remnant"):
         _emit(lines, name, getattr(m, name), _SINGLE[name][1])
     return "\n".join(lines) + "\n"
 

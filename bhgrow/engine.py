@@ -29,16 +29,18 @@ Black holes
 -----------
 A struct-of-arrays table (:class:`BlackHoles`) with a host row per black hole. When a host
 passes to its descendant, its black holes follow. The central black hole of the main
-progenitor stays central; central black holes of other progenitors become *wandering*
-(status ``wandering``: kept, not accreting, not merged) — unless the descendant receives no
-central from its main progenitor, in which case the most massive incoming central becomes
-its central (it would sink to the centre first). Black holes of halos that end before the
-final snapshot (a root at an earlier snapshot) stop with status ``host_ended``.
+progenitor stays central; central black holes of other progenitors start *sinking* on a
+merger clock (:mod:`bhgrow.pairs`: dynamical friction, hardening, GW inspiral) and coalesce
+with the host's central when it expires — unless the descendant receives no central from
+its main progenitor, in which case the most massive incoming central becomes its central.
+Sinking black holes do not accrete. Black holes of halos that end before the final snapshot
+(a root at an earlier snapshot) stop with status ``host_ended``.
 
 Ledger
 ------
-Per black hole: seed mass and accreted growth (mass gained, after the radiated fraction).
-Per forest: ``sum final mass = sum seed mass + sum growth`` must hold to round-off.
+Per black hole: seed mass, accreted growth (after the radiated fraction) and mass radiated
+in gravitational waves at its coalescences. Per forest, to round-off:
+``sum final mass (live) + sum ejected mass = sum seed mass + sum growth - sum radiated``.
 """
 
 from __future__ import annotations
@@ -48,7 +50,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from . import rng
+from . import pairs, rng
 from .config import Config, Model, RunSettings
 from .constants import T_EDD_GYR
 from .cosmology import Cosmology
@@ -57,8 +59,8 @@ from .physics import seeding as sd
 from .physics.gas import dynamical_time_gyr
 from .trees.forest import Forest
 
-STATUS_NAMES = ("central", "wandering", "host_ended")
-CENTRAL, WANDERING, HOST_ENDED = 0, 1, 2
+STATUS_NAMES = ("central", "sinking", "host_ended", "merged", "ejected", "ejected_triple")
+CENTRAL, SINKING, HOST_ENDED, MERGED, EJECTED, EJECTED_TRIPLE = range(6)
 CHANNEL_NAMES = {code: name for name, code in sd.CHANNEL_CODES.items()}
 # purposes of the engine's random draws (seeding uses its own, documented in seeding.py)
 _P_SPIN = 11
@@ -82,6 +84,10 @@ class BlackHoles:
     last_mdot: np.ndarray = field(default_factory=lambda: np.zeros(0))
     end_z: np.ndarray = field(default_factory=lambda: np.zeros(0))
     host_mass: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    t_hmerge: np.ndarray = field(default_factory=lambda: np.zeros(0))   # halo merger, Gyr
+    t_df_end: np.ndarray = field(default_factory=lambda: np.zeros(0))   # reaches nucleus, Gyr
+    t_c: np.ndarray = field(default_factory=lambda: np.zeros(0))        # coalescence, Gyr
+    radiated: np.ndarray = field(default_factory=lambda: np.zeros(0))   # lost to GWs, Msun
 
     def __len__(self) -> int:
         return int(self.bh_id.size)
@@ -123,6 +129,7 @@ class EngineResult:
     baryons: dict
     n_seeds: dict
     wall_s: float
+    mergers: dict = field(default_factory=dict)
 
 
 def run_forest(forest: Forest, model: Model, run: RunSettings,
@@ -170,6 +177,7 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
 
     bh = BlackHoles()
     hist = History()
+    events: list = []
     n_seeds = {name: 0 for name in sd.CHANNEL_CODES}
     channels = [c for _, c in model.seeding]
 
@@ -189,6 +197,11 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
         fb_eff = np.asarray(model.reionization.baryon_fraction(m, z, fb), dtype=float)
         new = n_prog[sl] == 0
         gas[sl] = np.where(new, fb_eff * m, gas[sl])
+
+        # --- coalescences due by now --------------------------------------------------------
+        if len(bh):
+            events += pairs.coalesce(bh, sl, float(t_snap[k]), k, gas, stars, v_esc, mass_h,
+                                     forest, model, run, cosmo, sd.CHANNEL_CODES)
 
         # --- black holes hosted in this slice ----------------------------------------------
         in_slice = (bh.host >= sl.start) & (bh.host < sl.stop) if len(bh) else np.zeros(0, bool)
@@ -219,7 +232,9 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
                           seed_z=np.full(fire.size, z), seed_mass=np.asarray(seed_mass)[fire],
                           growth=np.zeros(fire.size), status=np.full(fire.size, CENTRAL),
                           last_mdot=np.zeros(fire.size), end_z=np.full(fire.size, z),
-                          host_mass=m[fire])
+                          host_mass=m[fire], t_hmerge=np.full(fire.size, np.nan),
+                          t_df_end=np.full(fire.size, np.nan),
+                          t_c=np.full(fire.size, np.nan), radiated=np.zeros(fire.size))
                 for c, cnt in zip(*np.unique(code[fire], return_counts=True)):
                     n_seeds[CHANNEL_NAMES[int(c)]] += int(cnt)
                 has_central[fire] = True
@@ -270,7 +285,8 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
             hosted[bh.host[in_slice] - sl.start] = True
         flag = polluted[go] | (stars[go] > 0) | hosted[go - sl.start]
         np.maximum.at(polluted, d, flag)
-        moved = _move_black_holes(bh, in_slice, desc, forest, k, n_snap)
+        moved = _move_black_holes(bh, in_slice, desc, forest, k, n_snap, t_node, z_node,
+                                  mass_h, model, run, cosmo)
         # baryon cap on the receiving descendants: gas above f_b M_desc is stripped (applied
         # at every arrival, so a descendant fed from several snapshots is capped each time)
         ud = np.unique(d)
@@ -287,8 +303,11 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
     baryon = _baryon_check(forest, gas, stars, bh, fb)
     baryon["stripped_msun"] = float(stripped.sum())
     baryon["outflow_msun"] = float(outflow.sum())
+    mergers = {key: np.concatenate([e[key] for e in events]) for key in events[0]} \
+        if events else {}
     return EngineResult(black_holes=bh, history=hist, forest=forest, ledger=ledger,
-                        baryons=baryon, n_seeds=n_seeds, wall_s=time.perf_counter() - t_start)
+                        baryons=baryon, n_seeds=n_seeds, wall_s=time.perf_counter() - t_start,
+                        mergers=mergers)
 
 
 def _grow(model, run, bh, cbh, rows, sl, active, gas, stars, metals, outflow, inflow, t_dyn,
@@ -362,7 +381,7 @@ def _grow(model, run, bh, cbh, rows, sl, active, gas, stars, metals, outflow, in
 
 
 def _move_black_holes(bh: BlackHoles, in_slice, desc, forest: Forest, k: int,
-                      n_snap: int) -> np.ndarray:
+                      n_snap: int, t_node, z_node, mass_h, model, run, cosmo) -> np.ndarray:
     """Black holes of this slice follow their hosts to the descendants (see module notes).
 
     Returns the table indices of the black holes that moved.
@@ -391,29 +410,47 @@ def _move_black_holes(bh: BlackHoles, in_slice, desc, forest: Forest, k: int,
         c_sorted = cand[order]
         first = np.r_[True, new[c_sorted][1:] != new[c_sorted][:-1]]
         promote[c_sorted[first]] = True
-    bh.status[moving[demote & ~promote]] = WANDERING
+    sink = demote & ~promote
+    # partner of each new satellite black hole: the central the descendant receives
+    partner = np.zeros(forest.n_nodes)
+    stay = cen & (from_main | promote)
+    partner[new[stay]] = bh.mass[moving[stay]]
+    pairs.start_clocks(bh, moving[sink], new[sink], old[sink], t_node[new[sink]], model, run,
+                       cosmo, mass_h, z_node[new[sink]], partner[new[sink]], k)
+    bh.status[moving[sink]] = SINKING
     bh.host[moving] = new
     return moving
 
 
 def _ledger(bh: BlackHoles, forest: Forest) -> dict:
-    """Per-forest mass ledger: sum final = sum seed + sum growth (relative residual)."""
+    """Per-forest mass ledger (relative residual).
+
+    sum final mass (central, sinking, host_ended) + sum ejected mass
+        = sum seed mass + sum accreted growth - sum mass radiated in GWs
+    """
     fi = np.searchsorted(forest.forest_ids, bh.forest_id)
     nf = forest.n_forests
-    final = np.bincount(fi, weights=bh.mass, minlength=nf)
+    alive = np.isin(bh.status, (CENTRAL, SINKING, HOST_ENDED))
+    ejected = np.isin(bh.status, (EJECTED, EJECTED_TRIPLE))
+    final = np.bincount(fi, weights=np.where(alive, bh.mass, 0.0), minlength=nf)
+    ej = np.bincount(fi, weights=np.where(ejected, bh.mass, 0.0), minlength=nf)
     seeds = np.bincount(fi, weights=bh.seed_mass, minlength=nf)
     growth = np.bincount(fi, weights=bh.growth, minlength=nf)
-    resid = np.abs(final - seeds - growth) / np.maximum(final, 1e-300)
+    rad = np.bincount(fi, weights=bh.radiated, minlength=nf)
+    scale = np.maximum(seeds + growth, 1e-300)
+    resid = np.abs(final + ej - (seeds + growth - rad)) / scale
     worst = float(resid.max()) if nf else 0.0
     return {"max_relative_residual": worst, "ok": bool(worst < 1e-10),
             "total_final_msun": float(final.sum()), "total_seed_msun": float(seeds.sum()),
-            "total_growth_msun": float(growth.sum()), "per_forest_residual": resid}
+            "total_growth_msun": float(growth.sum()), "total_radiated_msun": float(rad.sum()),
+            "total_ejected_msun": float(ej.sum()), "per_forest_residual": resid}
 
 
 def _baryon_check(forest: Forest, gas, stars, bh: BlackHoles, fb: float) -> dict:
     """Largest relative excess of gas + stars + black holes over f_b M_halo (final roots)."""
     bh_mass = np.zeros(forest.n_nodes)
     on = bh.host >= 0
+    on = on & np.isin(bh.status, (CENTRAL, SINKING, HOST_ENDED))
     np.add.at(bh_mass, bh.host[on], bh.mass[on])
     roots = forest.desc_index < 0
     total = gas[roots] + stars[roots] + bh_mass[roots]

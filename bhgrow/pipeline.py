@@ -40,6 +40,8 @@ class RunResult:
     n_seeds: dict
     provenance: dict
     forest: Forest
+    mergers: "object" = None     # astropy Table, one row per coalescence
+    pending: "object" = None     # astropy Table, pairs still sinking at the end
 
 
 def _merge(parts: list) -> BlackHoles:
@@ -95,7 +97,7 @@ def run_model(forest: Forest, config: Config | None = None, *, progress: bool = 
     table["accreted_msun"] = bh.growth[o]
     table["final_spin"] = bh.spin[o]
     table["status"] = np.array([STATUS_NAMES[int(s)] for s in bh.status[o]],
-                               dtype="U12") if len(bh) else np.zeros(0, "U12")
+                               dtype="U16") if len(bh) else np.zeros(0, "U16")
     table["final_z"] = bh.end_z[o]
     table["host_mass_msun"] = bh.host_mass[o]
     table["weight_mpc3"] = w[o]
@@ -112,7 +114,10 @@ def run_model(forest: Forest, config: Config | None = None, *, progress: bool = 
         "final_mass_msun": "mass at final_z [Msun]",
         "accreted_msun": "mass gained by accretion after radiative losses [Msun]",
         "final_spin": "dimensionless spin at final_z",
-        "status": "central, wandering (kept in a merged host; not accreting) or host_ended",
+        "status": "central; sinking (pending pair, see pending_pairs.ecsv); merged "
+                  "(absorbed by bh_id_1 of a merger); ejected (recoil above the escape "
+                  "speed); ejected_triple (three-body slingshot); host_ended (host left the "
+                  "tree early)",
         "final_z": "redshift of the last snapshot the black hole was followed to",
         "host_mass_msun": "host halo mass at final_z [Msun]",
         "weight_mpc3": "comoving number density the forest represents [Mpc^-3]",
@@ -127,6 +132,8 @@ def run_model(forest: Forest, config: Config | None = None, *, progress: bool = 
     baryons["tolerance"] = 1e-6
     baryons["ok"] = bool(baryons["max_relative_excess"] <= baryons["tolerance"])
     n_seeds = {k: sum(r.n_seeds[k] for r in results) for k in results[0].n_seeds}
+    mergers = _merger_table(results, forest, cosmo)
+    pending = _pending_table(bh, forest, cosmo, weights)
     prov = {"bhgrow_version": __version__, "seed": config.run.seed,
             "cosmology": cosmo.to_dict(), "trees": str(trees_path) if trees_path else None,
             "trees_sha256": file_sha256(trees_path) if trees_path else None,
@@ -134,10 +141,92 @@ def run_model(forest: Forest, config: Config | None = None, *, progress: bool = 
             "n_chunks": len(chunks), "wall_time_s": wall,
             "nodes_per_s": forest.n_nodes / wall if wall > 0 else None,
             "n_black_holes": len(bh), "seeds_per_channel": n_seeds,
+            "n_mergers": len(mergers), "n_pending_pairs": len(pending),
+            "n_ejected": int(np.isin(bh.status, (4, 5)).sum()),
             "ledger": {k: v for k, v in ledger.items() if k != "per_forest_residual"},
             "baryons": baryons}
     return RunResult(black_holes=table, histories=hist, ledger=ledger, baryons=baryons,
-                     n_seeds=n_seeds, provenance=prov, forest=forest)
+                     n_seeds=n_seeds, provenance=prov, forest=forest, mergers=mergers,
+                     pending=pending)
+
+
+_MERGER_COLUMNS = [
+    ("forest_id", None, "forest of the host halo"),
+    ("weight_mpc3", "Mpc-3", "comoving number density the forest represents"),
+    ("z", None, "redshift of coalescence"),
+    ("t_gyr", "Gyr", "cosmic time of coalescence"),
+    ("m1_msun", "solMass", "primary (heavier) black-hole mass"),
+    ("m2_msun", "solMass", "secondary black-hole mass"),
+    ("q", None, "mass ratio m2/m1 <= 1"),
+    ("chirp_mass_msun", "solMass", "source-frame chirp mass (m1 m2)^(3/5)/(m1+m2)^(1/5)"),
+    ("chirp_mass_obs_msun", "solMass", "redshifted chirp mass (1+z) M_c"),
+    ("remnant_mass_msun", "solMass", "remnant mass after GW losses"),
+    ("remnant_spin", None, "remnant dimensionless spin"),
+    ("kick_kms", "km/s", "recoil velocity"),
+    ("ejected", None, "kick above the host's central escape speed"),
+    ("delay_gyr", "Gyr", "halo merger to coalescence"),
+    ("seed_channel_1", None, "seed channel of the primary"),
+    ("seed_channel_2", None, "seed channel of the secondary"),
+    ("host_mass_msun", "solMass", "host halo mass at coalescence"),
+    ("radiated_msun", "solMass", "mass radiated in gravitational waves"),
+    ("bh_id_1", None, "primary black-hole id (keeps its id as the remnant)"),
+    ("bh_id_2", None, "secondary black-hole id (status merged)"),
+]
+
+
+def _merger_table(results, forest: Forest, cosmo):
+    from astropy.table import Table
+
+    parts = [r.mergers for r in results if r.mergers]
+    t = Table()
+    if not parts:
+        for name, unit, d in _MERGER_COLUMNS:
+            t[name] = np.zeros(0, dtype="U12" if name.startswith("seed_channel") else float)
+        return t
+    cols = {k: np.concatenate([p[k] for p in parts]) for k in parts[0]}
+    order = np.lexsort((cols["bh_id_2"], cols["t_gyr"]))
+    cols = {k: v[order] for k, v in cols.items()}
+    weights = forest.volume_weight() if (forest.forest_weight is not None
+                                         or forest.box_mpc is not None) else None
+    cols["weight_mpc3"] = (weights[np.searchsorted(forest.forest_ids, cols["forest_id"])]
+                           if weights is not None else np.full(cols["z"].size, np.nan))
+    for key in ("seed_channel_1", "seed_channel_2"):
+        cols[key] = np.array([CHANNEL_NAMES[int(c)] for c in cols[key]], dtype="U12")
+    for name, unit, d in _MERGER_COLUMNS:
+        t[name] = cols[name]
+        if unit:
+            t[name].unit = unit
+        t[name].description = d
+    return t
+
+
+def _pending_table(bh, forest: Forest, cosmo, weights):
+    from astropy.table import Table
+
+    from .engine import SINKING
+    from .pairs import cosmo_z
+
+    idx = np.flatnonzero(bh.status == SINKING)
+    t0 = float(cosmo.age_gyr(0.0))
+    t = Table()
+    t["bh_id"] = bh.bh_id[idx]
+    t["forest_id"] = bh.forest_id[idx]
+    t["weight_mpc3"] = (weights[np.searchsorted(forest.forest_ids, bh.forest_id[idx])]
+                        if weights is not None else np.full(idx.size, np.nan))
+    t["mass_msun"] = bh.mass[idx]
+    t["host_mass_msun"] = bh.host_mass[idx]
+    t["halo_merger_t_gyr"] = bh.t_hmerge[idx]
+    t["nucleus_t_gyr"] = bh.t_df_end[idx]
+    t["coalescence_t_gyr"] = bh.t_c[idx]
+    tc = bh.t_c[idx]
+    t["coalescence_z"] = np.where(tc <= t0, cosmo_z(cosmo, np.minimum(tc, t0)), np.nan)
+    t["after_today"] = tc > t0
+    for k, u in (("mass_msun", "solMass"), ("host_mass_msun", "solMass"),
+                 ("halo_merger_t_gyr", "Gyr"), ("nucleus_t_gyr", "Gyr"),
+                 ("coalescence_t_gyr", "Gyr"), ("weight_mpc3", "Mpc-3")):
+        t[k].unit = u
+    t["coalescence_z"].description = "expected redshift of coalescence (NaN: after today)"
+    return t
 
 
 def _combine_ledger(parts: list) -> dict:
@@ -147,6 +236,8 @@ def _combine_ledger(parts: list) -> dict:
             "total_final_msun": sum(p["total_final_msun"] for p in parts),
             "total_seed_msun": sum(p["total_seed_msun"] for p in parts),
             "total_growth_msun": sum(p["total_growth_msun"] for p in parts),
+            "total_radiated_msun": sum(p["total_radiated_msun"] for p in parts),
+            "total_ejected_msun": sum(p["total_ejected_msun"] for p in parts),
             "per_forest_residual": np.concatenate([p["per_forest_residual"] for p in parts])}
 
 
@@ -156,6 +247,10 @@ def write_run(result: RunResult, config: Config, out, *, overwrite: bool = False
         write_ecsv(result.black_holes, tmp / "black_holes.ecsv",
                    meta={"made_by": f"bhgrow {__version__}", "seed": config.run.seed,
                          "trees": result.provenance.get("trees")})
+        write_ecsv(result.mergers, tmp / "mergers.ecsv",
+                   meta={"made_by": f"bhgrow {__version__}", "seed": config.run.seed})
+        write_ecsv(result.pending, tmp / "pending_pairs.ecsv",
+                   meta={"made_by": f"bhgrow {__version__}", "seed": config.run.seed})
         if config.run.histories:
             write_histories(result.histories, tmp / "histories.h5")
         (tmp / "config.toml").write_text(write_toml(config.table))

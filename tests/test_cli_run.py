@@ -27,8 +27,17 @@ def small_trees(tmp_path_factory):
 def test_run_writes_every_file(tmp_path, small_trees, capsys):
     out = tmp_path / "run"
     assert main(["run", "--trees", str(small_trees), "-o", str(out), "--no-progress"]) == 0
-    assert sorted(p.name for p in out.iterdir()) == ["black_holes.ecsv", "config.toml",
-                                                     "histories.h5", "run.json"]
+    assert sorted(p.name for p in out.iterdir()) == [
+        "black_holes.ecsv", "config.toml", "histories.h5", "mergers.ecsv",
+        "pending_pairs.ecsv", "run.json"]
+    m = Table.read(out / "mergers.ecsv")
+    for col in ("forest_id", "weight_mpc3", "z", "t_gyr", "m1_msun", "m2_msun", "q",
+                "chirp_mass_msun", "chirp_mass_obs_msun", "remnant_mass_msun",
+                "remnant_spin", "kick_kms", "ejected", "delay_gyr", "seed_channel_1",
+                "seed_channel_2", "host_mass_msun"):
+        assert col in m.colnames, col
+    assert str(m["kick_kms"].unit) == "km / s"
+    assert "coalescence_t_gyr" in Table.read(out / "pending_pairs.ecsv").colnames
     t = Table.read(out / "black_holes.ecsv")
     for col in ("bh_id", "forest_id", "seed_channel", "seed_z", "seed_mass_msun",
                 "final_mass_msun", "status", "host_mass_msun", "weight_mpc3"):

@@ -42,7 +42,8 @@ def test_every_key_has_a_comment():
     from bhgrow.physics import accretion, feedback, seeding
 
     objs = [cfg.run, cfg.model.halo, cfg.model.reionization, cfg.model.star_formation,
-            cfg.model.gas_zone, cfg.model.eddington, cfg.model.efficiency, cfg.model.spin]
+            cfg.model.gas_zone, cfg.model.eddington, cfg.model.efficiency, cfg.model.spin,
+            cfg.model.clock, cfg.model.spin_draw, cfg.model.remnant]
     objs += [c() for c in seeding.SEEDING_CHANNELS.values()]
     objs += [c() for c in accretion.ACCRETION_LAWS.values()]
     objs += [c() for c in feedback.FEEDBACK_MODES.values()]
