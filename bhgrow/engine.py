@@ -418,6 +418,7 @@ def _move_black_holes(bh: BlackHoles, in_slice, desc, forest: Forest, k: int,
     pairs.start_clocks(bh, moving[sink], new[sink], old[sink], t_node[new[sink]], model, run,
                        cosmo, mass_h, z_node[new[sink]], partner[new[sink]], k)
     bh.status[moving[sink]] = SINKING
+    bh.last_mdot[moving[sink]] = 0.0        # sinking black holes do not accrete
     bh.host[moving] = new
     return moving
 
