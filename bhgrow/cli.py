@@ -73,6 +73,33 @@ def build_parser() -> argparse.ArgumentParser:
                       help="replace an existing run directory")
     runp.add_argument("--no-progress", action="store_true", help="no progress bar")
 
+    demo = sub.add_parser("demo", help="run the whole pipeline on the demo forests",
+                          description="Trees -> model -> products on the bundled demo forests "
+                          "with the default config: black holes, mergers, tables, figures, "
+                          "summary.md and summary.json.")
+    demo.add_argument("-o", "--output", default="bhgrow_demo", metavar="DIR",
+                      help="run directory to create (default: bhgrow_demo)")
+    demo.add_argument("--overwrite", action="store_true",
+                      help="replace an existing run directory")
+    demo.add_argument("--no-progress", action="store_true", help="no progress bar")
+
+    tab = sub.add_parser("tables", help="rebuild tables, figures and summary of a finished run",
+                         description="Rebuild tables/, figures/, summary.md and summary.json "
+                         "of a finished run from its files, without rerunning the model; a "
+                         "config file may change the binning ([tables]) and GW settings ([gw]).")
+    tab.add_argument("run_dir", metavar="RUN_DIR")
+    tab.add_argument("--config", default=None, metavar="CONFIG.toml",
+                     help="config for binning/GW settings (default: the run's config.toml)")
+
+    cmp_ = sub.add_parser("compare", help="compare several runs side by side",
+                          description="Side-by-side headline numbers (comparison.md, "
+                          "comparison.json) and overlaid figures of two or more runs.")
+    cmp_.add_argument("runs", nargs="+", metavar="RUN_DIR")
+    cmp_.add_argument("-o", "--output", required=True, metavar="DIR",
+                      help="directory to create for the comparison")
+    cmp_.add_argument("--overwrite", action="store_true",
+                      help="replace an existing directory")
+
     sub.add_parser("config", help="print the default config with comments",
                    description="Print the full default configuration as TOML, with the "
                    "meaning, unit and source of every key.")
@@ -207,6 +234,39 @@ def _cmd_run(args) -> int:
     return EXIT_OK if result.ledger["ok"] else EXIT_FAIL
 
 
+def _cmd_demo(args) -> int:
+    from .pipeline import run
+
+    result = run(None, trees=None, out=args.output, overwrite=args.overwrite,
+                 progress=not args.no_progress)
+    out = Path(args.output)
+    s = result.summary or {}
+    print((out / "summary.md").read_text())
+    print(f"run directory: {out}/\n  black_holes.ecsv, mergers.ecsv, pending_pairs.ecsv, "
+          f"histories.h5, config.toml, run.json\n  tables/   "
+          f"{', '.join(sorted(p.name for p in (out / 'tables').iterdir()))}\n  figures/  "
+          f"{', '.join(sorted(p.name for p in (out / 'figures').iterdir()))}")
+    return EXIT_OK if s.get("ledger_ok", result.ledger["ok"]) else EXIT_FAIL
+
+
+def _cmd_tables(args) -> int:
+    from .products import products_from_run
+
+    summary = products_from_run(args.run_dir, args.config)
+    print(f"rebuilt {args.run_dir}/tables, figures, summary.md; hc(1/yr) = "
+          f"{summary['hc_1yr']:.3e}, observed merger rate {summary['observed_merger_rate_per_yr']:.4g}/yr")
+    return EXIT_OK
+
+
+def _cmd_compare(args) -> int:
+    from .products import compare_runs
+
+    out = compare_runs(args.runs, args.output, overwrite=args.overwrite)
+    print((out / "comparison.md").read_text())
+    print(f"figures in {out}/")
+    return EXIT_OK
+
+
 def _cmd_config(args) -> int:
     from .config import default_config_text
 
@@ -216,7 +276,8 @@ def _cmd_config(args) -> int:
 
 _COMMANDS = {("trees", "check"): _cmd_trees_check, ("trees", "info"): _cmd_trees_info,
              ("trees", "make"): _cmd_trees_make, ("run", None): _cmd_run,
-             ("config", None): _cmd_config}
+             ("config", None): _cmd_config, ("demo", None): _cmd_demo,
+             ("tables", None): _cmd_tables, ("compare", None): _cmd_compare}
 
 
 def main(argv=None) -> int:

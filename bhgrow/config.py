@@ -30,6 +30,8 @@ from .physics import feedback as fb
 from .physics import gas
 from .physics import seeding as sd
 from .physics.halo import HaloStructure
+from .products import GWSettings
+from .tables import Binning
 
 # ------------------------------------------------------------------------------------------
 # Run-level defaults (one place; unit and source beside each)
@@ -119,11 +121,13 @@ class Model:
 
 @dataclass(frozen=True)
 class Config:
-    """A resolved configuration: run settings + model + the raw table it came from."""
+    """A resolved configuration: run settings, model, products settings, resolved table."""
 
     run: RunSettings
     model: Model
     table: dict
+    gw: object = None          # bhgrow.products.GWSettings
+    binning: object = None     # bhgrow.tables.Binning
 
 
 # section name -> (component class, documentation line)
@@ -139,6 +143,8 @@ _SINGLE = {
     "mergers": (dyn.MergerClock, "merger delay: dynamical friction, hardening, GW inspiral"),
     "spin_draw": (rem.SpinDraw, "spin magnitudes and orientations at coalescence"),
     "remnant": (rem.RemnantModel, "numerical-relativity fits for the remnant"),
+    "gw": (GWSettings, "gravitational-wave products (LISA SNR, detections)"),
+    "tables": (Binning, "binning of the product tables"),
 }
 # choice sections: key naming the choice, registry, default choice
 _CHOICE = {
@@ -168,9 +174,12 @@ def _unknown_keys(table: dict, allowed, where: str, source: str) -> None:
 
 
 def _coerce(value, default):
-    """TOML ints for float fields become floats; everything else is left to validation."""
+    """TOML ints for float fields become floats, arrays for tuple fields become tuples;
+    everything else is left to the component's validation."""
     if isinstance(default, float) and isinstance(value, int) and not isinstance(value, bool):
         return float(value)
+    if isinstance(default, tuple) and isinstance(value, list):
+        return tuple(value)
     return value
 
 
@@ -255,8 +264,11 @@ def from_table(table: dict, source: str = "<config>") -> Config:
                   efficiency=built["efficiency"], spin=built["spin"],
                   feedback=built["feedback"], clock=built["mergers"],
                   spin_draw=built["spin_draw"], remnant=built["remnant"])
-    return Config(run=built["run"], model=model, table=resolved_table(built["run"], model,
-                                                                      channels, table))
+    resolved = resolved_table(built["run"], model, channels, table)
+    resolved["gw"] = _component_table(built["gw"])
+    resolved["tables"] = _component_table(built["tables"])
+    return Config(run=built["run"], model=model, table=resolved, gw=built["gw"],
+                  binning=built["tables"])
 
 
 def load_config(path=None) -> Config:
@@ -285,6 +297,7 @@ def _component_table(obj) -> dict:
         if not f.init or f.name.startswith("_"):
             continue
         v = getattr(obj, f.name)
+        v = list(v) if isinstance(v, tuple) else v
         out[f.name] = _component_table(v) if is_dataclass(v) else v
     return out
 
@@ -412,6 +425,8 @@ def default_config_text() -> str:
     _emit(lines, "mergers", m.clock, _SINGLE["mergers"][1])
     for name in ("spin_draw", "remnant"):
         _emit(lines, name, getattr(m, name), _SINGLE[name][1])
+    _emit(lines, "gw", cfg.gw, _SINGLE["gw"][1])
+    _emit(lines, "tables", cfg.binning, _SINGLE["tables"][1])
     return "\n".join(lines) + "\n"
 
 

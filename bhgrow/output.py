@@ -111,3 +111,18 @@ def write_json(obj: dict, path: Path) -> None:
         raise TypeError(type(o))
 
     path.write_text(json.dumps(obj, indent=2, default=plain, sort_keys=False) + "\n")
+
+
+def read_histories(path) -> dict:
+    """Histories written by :func:`write_histories` as a dict of column arrays."""
+    import h5py
+
+    path = Path(path)
+    if not path.exists():
+        raise BhgrowInputError(f"{path}: missing", source=str(path), rule="no_file")
+    try:
+        with h5py.File(path, "r") as h5:
+            return {k: h5[k][()] for k in h5 if k != "index"}
+    except OSError as exc:
+        raise BhgrowInputError(f"{path}: not a readable HDF5 file ({exc})", source=str(path),
+                               rule="not_hdf5") from None

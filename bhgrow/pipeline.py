@@ -42,6 +42,7 @@ class RunResult:
     forest: Forest
     mergers: "object" = None     # astropy Table, one row per coalescence
     pending: "object" = None     # astropy Table, pairs still sinking at the end
+    summary: dict | None = None  # headline numbers (when products were written)
 
 
 def _merge(parts: list) -> BlackHoles:
@@ -133,6 +134,11 @@ def run_model(forest: Forest, config: Config | None = None, *, progress: bool = 
     baryons["ok"] = bool(baryons["max_relative_excess"] <= baryons["tolerance"])
     n_seeds = {k: sum(r.n_seeds[k] for r in results) for k in results[0].n_seeds}
     mergers = _merger_table(results, forest, cosmo)
+    from .products import merger_snr
+
+    mergers["lisa_snr"] = merger_snr(mergers, cosmo, config.gw)
+    mergers["lisa_snr"].description = (f"sky-averaged LISA SNR ({config.gw.waveform}, "
+                                       f"{config.gw.mission_yr:g}-yr mission)")
     pending = _pending_table(bh, forest, cosmo, weights)
     prov = {"bhgrow_version": __version__, "seed": config.run.seed,
             "cosmology": cosmo.to_dict(), "trees": str(trees_path) if trees_path else None,
@@ -241,7 +247,8 @@ def _combine_ledger(parts: list) -> dict:
             "per_forest_residual": np.concatenate([p["per_forest_residual"] for p in parts])}
 
 
-def write_run(result: RunResult, config: Config, out, *, overwrite: bool = False) -> Path:
+def write_run(result: RunResult, config: Config, out, *, overwrite: bool = False,
+              products: bool = True) -> Path:
     """Write a run directory atomically (see :mod:`bhgrow.output`)."""
     with RunDirectory(out, overwrite=overwrite) as tmp:
         write_ecsv(result.black_holes, tmp / "black_holes.ecsv",
@@ -255,6 +262,12 @@ def write_run(result: RunResult, config: Config, out, *, overwrite: bool = False
             write_histories(result.histories, tmp / "histories.h5")
         (tmp / "config.toml").write_text(write_toml(config.table))
         write_json(result.provenance, tmp / "run.json")
+        if products:
+            from .products import make_products
+
+            result.summary = make_products(result, config,
+                                           Cosmology.from_name(config.run.cosmology), tmp,
+                                           name=Path(out).name)
     return Path(out)
 
 
