@@ -337,14 +337,21 @@ def _grow(model, run, bh, cbh, rows, sl, active, gas, stars, metals, outflow, in
     edd = np.asarray(model.eddington.coefficient(eps), dtype=float)        # 1/Gyr
     per_unit = 1.0 + np.asarray(model.feedback.gas_removed(np.ones(cbh.size), eps, ve),
                                 dtype=float)
-    # substeps per halo from its own fastest time-scale (black-hole e-folding, draining of
-    # the reservoir by accretion + feedback), so a halo's result never depends on which
-    # other halos share its snapshot or chunk
-    rho, cs, _ = model.gas_zone.state(g, rv, tv)
+    # substeps per halo from its own fastest time-scale: black-hole e-folding, draining of
+    # the reservoir by accretion + feedback, and the reservoir's own loss to star formation
+    # and winds (where the hole competes with them for the inflow, the split step must
+    # resolve that competition). A drained reservoir refills from the inflow, so the rates
+    # are estimated with the gas it will hold: max(now, min(inflow x dt, inflow / loss rate)).
+    # Each halo's count depends on that halo only, so results never depend on which other
+    # halos share its snapshot or chunk.
+    loss = np.asarray(model.star_formation.loss_rate(td, vc), dtype=float)
+    g_est = np.maximum(g, np.minimum(I * h_total, np.divide(I, loss, out=I * h_total,
+                                                            where=loss > 0)))
+    rho, cs, _ = model.gas_zone.state(g_est, rv, tv)
     A = np.asarray(model.accretion.coefficient(rho, cs, 0.0), dtype=float)
     mdot = np.minimum(A * m_bh, edd) * m_bh
-    rate = (1 - eps) * mdot / m_bh + np.divide(mdot * per_unit, g, out=np.zeros(cbh.size),
-                                               where=g > 0)
+    rate = (1 - eps) * mdot / m_bh + loss + np.divide(
+        mdot * per_unit, g_est, out=np.zeros(cbh.size), where=g_est > 0)
     n_sub = np.clip(np.ceil(rate * h_total / run.substep_safety), 1, run.max_substeps)
     h = h_total / n_sub
     grown = np.zeros(cbh.size)

@@ -423,6 +423,16 @@ class StarFormation:
         # eta = (V_c / V_hot)^(-alpha_hot)  (Cole et al. 2000, MNRAS 319, 168)
         return (v / self.v0_kms) ** (-self.alpha)
 
+    def loss_rate(self, t_dyn, v_c) -> np.ndarray:
+        """Rate at which star formation and winds remove reservoir gas, ``a`` [1/Gyr].
+
+        ``a = (1 - R + eta) eps_* / t_dyn``: the e-folding rate of the reservoir without
+        inflow (the coefficient of the linear system solved by :meth:`step`). The engine
+        uses it to choose substeps when a black hole competes with star formation for gas.
+        """
+        eta = self.mass_loading(v_c)
+        return (1.0 - self.recycle + eta) * self.efficiency / np.asarray(t_dyn, dtype=np.float64)
+
     def step(self, gas, stars, metals, inflow_rate, t_dyn, v_c, dt) -> GasStep:
         """Advance gas, stars and metals over ``dt`` with constant inflow, exactly.
 
