@@ -47,7 +47,7 @@ References
 .. [GB06] Greif T. H., Bromm V., 2006, MNRAS, 373, 128
 .. [V13] Vogelsberger M. et al., 2013, MNRAS, 436, 3031
 .. [S15] Sijacki D. et al., 2015, MNRAS, 452, 575
-.. [T17] Tremmel M. et al., 2017, MNRAS, 470, 1121
+.. [TK14] Taylor P., Kobayashi C., 2014, MNRAS, 442, 2751
 
 Values marked "(memory)" were written from memory.
 """
@@ -135,15 +135,16 @@ DEFAULT_HALO_MASS_MIN_MSUN: float = 5.0e10 / ILLUSTRIS_H
 DEFAULT_HALO_MASS_SEED_MSUN: float = 1.0e5 / ILLUSTRIS_H
 
 # --- dense-gas seeds ---
-#: hydrogen density threshold [cm^-3]: 3 cm^-3, 15 times the star-formation threshold of
-#: Romulus (Tremmel et al. 2017, MNRAS 470, 1121, memory); here applied to the zone mean
+#: hydrogen density threshold [cm^-3]: 3 cm^-3, a stated choice in the spirit of gas-based
+#: seeding in cosmological simulations (e.g. Taylor & Kobayashi 2014, MNRAS 442, 2751,
+#: memory); here applied to the zone mean
 DEFAULT_DENSE_N_H_MIN_CM3: float = 3.0
-#: metallicity ceiling [metal mass fraction]: 3e-4 (Tremmel et al. 2017, memory)
+#: metallicity ceiling [metal mass fraction]: 3e-4 (a stated choice; cf. Taylor & Kobayashi
+#: 2014, memory)
 DEFAULT_DENSE_Z_MAX: float = 3.0e-4
 #: "cold": the reservoir must not be hot, T_vir < the GasZone hot threshold [K]
 DEFAULT_DENSE_T_VIR_MAX_K: float = DEFAULT_HOT_T_VIR_K
-#: seed mass [Msun]: 1e5 (direct-collapse scale, Lodato & Natarajan 2006, memory; Romulus used
-#: 1e6 for resolution)
+#: seed mass [Msun]: 1e5 (direct-collapse scale, Lodato & Natarajan 2006, memory)
 DEFAULT_DENSE_SEED_MSUN: float = 1.0e5
 
 # =============================================================================================
@@ -562,15 +563,15 @@ class DenseGasSeeds:
 
     A halo is seeded when it has no black hole, its zone has ``n_H > n_h_min_cm3``,
     ``Z < z_max`` and its reservoir is cold (``T_vir < t_vir_max_k``, the hot-halo threshold
-    of :class:`~bhgrow.physics.gas.GasZone`); after Tremmel et al. (2017), applied to the
+    of :class:`~bhgrow.physics.gas.GasZone`); in the spirit of Taylor & Kobayashi (2014), applied to the
     zone mean density rather than to single gas particles.
 
     Parameters
     ----------
     n_h_min_cm3 : float, optional
-        Hydrogen density threshold, cm^-3 (default 3; Tremmel et al. 2017, memory).
+        Hydrogen density threshold, cm^-3 (default 3; a stated choice; cf. Taylor & Kobayashi 2014, memory).
     z_max : float, optional
-        Metal mass fraction ceiling (default 3e-4; Tremmel et al. 2017, memory).
+        Metal mass fraction ceiling (default 3e-4; a stated choice; cf. Taylor & Kobayashi 2014, memory).
     t_vir_max_k : float, optional
         Reservoir counts as cold below this virial temperature, K (default 6e5).
     mass : SeedMass, optional
@@ -601,7 +602,7 @@ class DenseGasSeeds:
             Seed mass where ``mask``, 0 elsewhere.
         """
         n = _n_halos(inp)
-        # dense, cold, metal-poor gas: n_H > n_thr, Z < Z_thr (Tremmel et al. 2017, MNRAS 470)
+        # dense, cold, metal-poor gas: n_H > n_thr, Z < Z_thr (cf. Taylor & Kobayashi 2014, MNRAS 442)
         mask = (~_bool(inp.has_bh, n)
                 & (_f64(inp.n_h_cm3, n) > self.n_h_min_cm3)
                 & (_f64(inp.metallicity, n) < self.z_max)

@@ -195,7 +195,7 @@ def test_halo_mass_seed_criteria():
 
 
 def test_dense_gas_seed_criteria():
-    # n_H > 3 cm^-3, Z < 3e-4 (Tremmel et al. 2017, memory), T_vir < 6e5 K (GasZone hot threshold)
+    # n_H > 3 cm^-3, Z < 3e-4 (a stated choice; cf. Taylor & Kobayashi 2014, memory), T_vir < 6e5 K (GasZone hot threshold)
     ch = DenseGasSeeds()
     rows = [
         {"n_h_cm3": 10.0},                                  # 0 qualifies
