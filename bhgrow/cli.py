@@ -72,6 +72,7 @@ def build_parser() -> argparse.ArgumentParser:
     runp.add_argument("--overwrite", action="store_true",
                       help="replace an existing run directory")
     runp.add_argument("--no-progress", action="store_true", help="no progress bar")
+    _add_execution(runp)
 
     demo = sub.add_parser("demo", help="run the whole pipeline on the demo forests",
                           description="Trees -> model -> products on the bundled demo forests "
@@ -82,6 +83,7 @@ def build_parser() -> argparse.ArgumentParser:
     demo.add_argument("--overwrite", action="store_true",
                       help="replace an existing run directory")
     demo.add_argument("--no-progress", action="store_true", help="no progress bar")
+    _add_execution(demo)
 
     tab = sub.add_parser("tables", help="rebuild tables, figures and summary of a finished run",
                          description="Rebuild tables/, figures/, summary.md and summary.json "
@@ -104,6 +106,19 @@ def build_parser() -> argparse.ArgumentParser:
                    description="Print the full default configuration as TOML, with the "
                    "meaning, unit and source of every key.")
     return parser
+
+
+def _add_execution(p: argparse.ArgumentParser) -> None:
+    """How a run executes: worker processes, Dask, resume (results never depend on them)."""
+    p.add_argument("--workers", type=int, default=None, metavar="N",
+                   help="local worker processes running chunks of whole forests in parallel "
+                   "(0 = one per CPU core; default: run.workers of the config, 1)")
+    p.add_argument("--dask", default=None, metavar="SCHEDULER_ADDRESS",
+                   help="run the chunks on a dask.distributed cluster, e.g. "
+                   "tcp://10.0.0.5:8786 (needs pip install -e '.[dask]')")
+    p.add_argument("--resume", action="store_true",
+                   help="continue an interrupted run: reuse the finished chunks kept in "
+                   "DIR.partial/ (same config and trees) and run the rest")
 
 
 def _add_trees_make(tsub) -> None:
@@ -220,11 +235,19 @@ def _cmd_trees_make(args) -> int:
     return EXIT_OK
 
 
+def _workers(args):
+    if args.workers is not None and args.workers < 0:
+        raise BhgrowInputError(f"--workers must be >= 0 (0 = one per CPU core); got "
+                               f"{args.workers}", rule="bad_option")
+    return args.workers
+
+
 def _cmd_run(args) -> int:
     from .pipeline import run
 
     result = run(args.config, trees=args.trees, out=args.output, overwrite=args.overwrite,
-                 progress=not args.no_progress)
+                 progress=not args.no_progress, workers=_workers(args), dask=args.dask,
+                 resume=args.resume)
     p = result.provenance
     seeds = ", ".join(f"{k} {v}" for k, v in result.n_seeds.items() if v)
     print(f"wrote {args.output}: {p['n_black_holes']} black holes ({seeds or 'none'}) in "
@@ -238,7 +261,8 @@ def _cmd_demo(args) -> int:
     from .pipeline import run
 
     result = run(None, trees=None, out=args.output, overwrite=args.overwrite,
-                 progress=not args.no_progress)
+                 progress=not args.no_progress, workers=_workers(args), dask=args.dask,
+                 resume=args.resume)
     out = Path(args.output)
     s = result.summary or {}
     print((out / "summary.md").read_text())

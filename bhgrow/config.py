@@ -43,6 +43,8 @@ DEFAULT_SUBSTEP_SAFETY = 0.05    # substep <= this x the fastest growth/gas time
                                  # BH masses within 0.5% of a solve_ivp reference (tests)
 DEFAULT_CHUNK_NODES = 2_000_000  # whole forests per engine chunk (bounds memory)
 DEFAULT_HISTORIES = True         # write per-black-hole histories
+DEFAULT_WORKERS = 1              # local worker processes (0 = one per CPU core)
+DEFAULT_DASK_SCHEDULER = ""      # dask.distributed scheduler address ("" = no Dask)
 DEFAULT_BARYON_TOLERANCE = 1e-6  # relative excess of gas+stars+BH over f_b M_halo allowed
 
 
@@ -65,6 +67,12 @@ class RunSettings:
         Tree nodes per engine chunk of whole forests (>= 1); bounds memory.
     histories : bool
         Write per-black-hole histories (histories.h5).
+    workers : int
+        Local worker processes that run chunks in parallel (>= 0; 0 = one per CPU core,
+        1 = run in this process). Results do not depend on it.
+    dask_scheduler : str
+        Address of a dask.distributed scheduler (e.g. ``tcp://10.0.0.5:8786``) to send chunks
+        to instead of local processes; empty = no Dask. Needs ``pip install -e '.[dask]'``.
     """
 
     seed: int = DEFAULT_SEED
@@ -73,6 +81,8 @@ class RunSettings:
     substep_safety: float = DEFAULT_SUBSTEP_SAFETY
     chunk_nodes: int = DEFAULT_CHUNK_NODES
     histories: bool = DEFAULT_HISTORIES
+    workers: int = DEFAULT_WORKERS
+    dask_scheduler: str = DEFAULT_DASK_SCHEDULER
 
     def __post_init__(self):
         _validate.integer("run", "seed", self.seed, minimum=0)
@@ -80,6 +90,11 @@ class RunSettings:
         _validate.in_range("run", "substep_safety", self.substep_safety, 0.0, 1.0,
                            lo_open=True)
         _validate.integer("run", "chunk_nodes", self.chunk_nodes, minimum=1)
+        _validate.integer("run", "workers", self.workers, minimum=0)
+        if not isinstance(self.dask_scheduler, str):
+            raise ParameterError(f"`dask_scheduler` of run must be an address string; got "
+                                 f"{self.dask_scheduler!r}", source="run",
+                                 rule="dask_scheduler")
         if not isinstance(self.histories, bool):
             raise ParameterError(f"`histories` of run must be true or false; got "
                                  f"{self.histories!r}", source="run", rule="histories")

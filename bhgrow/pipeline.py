@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import math
+import shutil
 import time
 from dataclasses import dataclass
 from pathlib import Path
@@ -11,7 +13,7 @@ import numpy as np
 from . import __version__
 from .config import Config, load_config, write_toml
 from .cosmology import Cosmology
-from .engine import CHANNEL_NAMES, STATUS_NAMES, BlackHoles, run_forest
+from .engine import CHANNEL_NAMES, SINKING, STATUS_NAMES, BlackHoles
 from .errors import BhgrowInputError
 from .output import RunDirectory, file_sha256, write_ecsv, write_histories, write_json
 from .trees.forest import Forest
@@ -46,15 +48,24 @@ class RunResult:
 
 
 def _merge(parts: list) -> BlackHoles:
+    """Concatenate chunk tables, sorted by bh_id (unique), so any chunk plan gives one table."""
     out = BlackHoles()
     for p in parts:
         out.append(**{k: getattr(p, k) for k in out.__dataclass_fields__})
+    o = np.argsort(out.bh_id, kind="stable")
+    for k in out.__dataclass_fields__:
+        setattr(out, k, getattr(out, k)[o])
     return out
 
 
 def run_model(forest: Forest, config: Config | None = None, *, progress: bool = False,
-              trees_path=None) -> RunResult:
+              trees_path=None, workers: int | None = None, dask=None,
+              checkpoint_dir=None, resume: bool = False) -> RunResult:
     """Run the engine over a forest (in chunks of whole forests) and collect the results.
+
+    Chunks are planned by cost, largest first (:func:`bhgrow.parallel.plan_chunks`) and run
+    here, in local worker processes or on Dask; the results are the same, bit for bit, for
+    any plan, worker count and backend.
 
     Parameters
     ----------
@@ -65,18 +76,48 @@ def run_model(forest: Forest, config: Config | None = None, *, progress: bool = 
         Show a progress bar over chunks.
     trees_path : path, optional
         Recorded in the provenance (with its SHA-256).
+    workers : int, optional
+        Local worker processes (0 = one per CPU core); default ``config.run.workers``.
+    dask : str or dask.distributed.Client, optional
+        Scheduler address (or a client) to run the chunks on; default
+        ``config.run.dask_scheduler`` (empty: no Dask).
+    checkpoint_dir : path, optional
+        Keep every finished chunk here (:class:`bhgrow.parallel.Checkpoint`).
+    resume : bool
+        Reuse the finished chunks in ``checkpoint_dir`` (same config and trees).
     """
     from astropy.table import Table
-    from tqdm.auto import tqdm
+
+    from . import parallel as par
 
     config = config or load_config(None)
     cosmo = Cosmology.from_name(config.run.cosmology)
     t0 = time.perf_counter()
-    chunks = list(forest.chunks(config.run.chunk_nodes)) if forest.n_nodes > \
-        config.run.chunk_nodes else [forest]
-    results = [run_forest(c, config.model, config.run, cosmo)
-               for c in tqdm(chunks, desc="forests", unit="chunk",
-                             disable=not progress or len(chunks) < 2)]
+    workers = config.run.workers if workers is None else workers
+    dask = dask if dask is not None else (config.run.dask_scheduler or None)
+    client, owned = par.connect_dask(dask) if dask else (None, False)
+    try:
+        slots = par.dask_slots(client) if client is not None else par.n_local_workers(workers)
+        npf = forest.nodes_per_forest()
+
+        def planner(ids):
+            return par.plan_chunks(npf[np.searchsorted(forest.forest_ids, ids)],
+                                   config.run.chunk_nodes, slots, forest_ids=ids)
+
+        plan = planner(forest.forest_ids)
+        ckpt = None
+        if checkpoint_dir is not None:
+            ckpt = par.Checkpoint.open(checkpoint_dir, plan,
+                                       config_sha256=par.config_sha256(config),
+                                       trees_sha256=par.forest_sha256(forest), resume=resume,
+                                       replan=planner)
+            plan = ckpt.plan
+        results = par.run_chunks(forest, plan, config.model, config.run, cosmo,
+                                 workers=workers, client=client, checkpoint=ckpt,
+                                 progress=progress)
+    finally:
+        if owned:
+            client.close()
     bh = _merge([r.black_holes for r in results])
     hist_cols = [r.history.columns() for r in results]
     hist = {k: np.concatenate([h[k] for h in hist_cols]) for k in hist_cols[0]}
@@ -126,10 +167,11 @@ def run_model(forest: Forest, config: Config | None = None, *, progress: bool = 
     for k, d in descr.items():
         table[k].description = d
     wall = time.perf_counter() - t0
-    ledger = _combine_ledger([r.ledger for r in results])
+    ledger = _combine_ledger([r.ledger for r in results], plan, bh)
+    # chunk sums: identical for any plan up to round-off in the last digit
     baryons = {"max_relative_excess": max(r.baryons["max_relative_excess"] for r in results),
-               "stripped_msun": sum(r.baryons["stripped_msun"] for r in results),
-               "outflow_msun": sum(r.baryons["outflow_msun"] for r in results)}
+               "stripped_msun": math.fsum(r.baryons["stripped_msun"] for r in results),
+               "outflow_msun": math.fsum(r.baryons["outflow_msun"] for r in results)}
     baryons["tolerance"] = 1e-6
     baryons["ok"] = bool(baryons["max_relative_excess"] <= baryons["tolerance"])
     n_seeds = {k: sum(r.n_seeds[k] for r in results) for k in results[0].n_seeds}
@@ -144,7 +186,10 @@ def run_model(forest: Forest, config: Config | None = None, *, progress: bool = 
             "cosmology": cosmo.to_dict(), "trees": str(trees_path) if trees_path else None,
             "trees_sha256": file_sha256(trees_path) if trees_path else None,
             "n_forests": forest.n_forests, "n_nodes": forest.n_nodes,
-            "n_chunks": len(chunks), "wall_time_s": wall,
+            "n_chunks": len(plan), "backend": ("dask" if client is not None else
+                                                 "processes" if slots > 1 else "serial"),
+            "workers": slots, "n_chunks_resumed": ckpt.n_reused if ckpt else 0,
+            "wall_time_s": wall,
             "nodes_per_s": forest.n_nodes / wall if wall > 0 else None,
             "n_black_holes": len(bh), "seeds_per_channel": n_seeds,
             "n_mergers": len(mergers), "n_pending_pairs": len(pending),
@@ -235,16 +280,24 @@ def _pending_table(bh, forest: Forest, cosmo, weights):
     return t
 
 
-def _combine_ledger(parts: list) -> dict:
+def _combine_ledger(parts: list, plan: list, bh: BlackHoles) -> dict:
+    """Ledger of the whole run: totals summed exactly (math.fsum) over the merged black
+    holes, per-forest residuals in forest-id order, so no number depends on the plan."""
+    from .engine import CENTRAL, EJECTED, EJECTED_TRIPLE, HOST_ENDED
+
     worst = max(p["max_relative_residual"] for p in parts)
+    alive = np.isin(bh.status, (CENTRAL, SINKING, HOST_ENDED))
+    ejected = np.isin(bh.status, (EJECTED, EJECTED_TRIPLE))
+    ids = np.concatenate(plan)
+    resid = np.concatenate([p["per_forest_residual"] for p in parts])
     return {"max_relative_residual": worst, "ok": bool(worst < 1e-10),
             "tolerance": 1e-10,
-            "total_final_msun": sum(p["total_final_msun"] for p in parts),
-            "total_seed_msun": sum(p["total_seed_msun"] for p in parts),
-            "total_growth_msun": sum(p["total_growth_msun"] for p in parts),
-            "total_radiated_msun": sum(p["total_radiated_msun"] for p in parts),
-            "total_ejected_msun": sum(p["total_ejected_msun"] for p in parts),
-            "per_forest_residual": np.concatenate([p["per_forest_residual"] for p in parts])}
+            "total_final_msun": math.fsum(bh.mass[alive]),
+            "total_seed_msun": math.fsum(bh.seed_mass),
+            "total_growth_msun": math.fsum(bh.growth),
+            "total_radiated_msun": math.fsum(bh.radiated),
+            "total_ejected_msun": math.fsum(bh.mass[ejected]),
+            "per_forest_residual": resid[np.argsort(ids, kind="stable")]}
 
 
 def write_run(result: RunResult, config: Config, out, *, overwrite: bool = False,
@@ -272,7 +325,8 @@ def write_run(result: RunResult, config: Config, out, *, overwrite: bool = False
 
 
 def run(config=None, *, trees=None, out=None, overwrite: bool = False,
-        progress: bool = False) -> RunResult:
+        progress: bool = False, workers: int | None = None, dask=None,
+        resume: bool = False) -> RunResult:
     """Load trees (default: the demo forests), run the model, and optionally write ``out``.
 
     Parameters
@@ -281,8 +335,18 @@ def run(config=None, *, trees=None, out=None, overwrite: bool = False,
         A loaded config, a TOML path, or None for all defaults.
     trees : Forest, path or None
     out : path, optional
-        Run directory to write (refused if it exists unless ``overwrite``).
+        Run directory to write (refused if it exists unless ``overwrite``). Finished chunks
+        are kept in ``<out>.partial/`` until the run directory is written.
+    workers : int, optional
+        Local worker processes (0 = one per CPU core); default ``run.workers`` of the config.
+    dask : str or dask.distributed.Client, optional
+        Dask scheduler address; default ``run.dask_scheduler`` of the config.
+    resume : bool
+        Continue an interrupted run from ``<out>.partial/`` (same config and trees); without
+        it an existing ``<out>.partial/`` is refused, or discarded with ``overwrite``.
     """
+    from .parallel import Checkpoint
+
     if not isinstance(config, Config):
         config = load_config(config)
     if isinstance(trees, Forest):
@@ -290,13 +354,22 @@ def run(config=None, *, trees=None, out=None, overwrite: bool = False,
     else:
         path = Path(trees) if trees is not None else demo_trees_path()
         forest = load_forest(path)
+    partial = None
     if out is not None:
         out = Path(out)
         if out.exists() and not overwrite:   # fail before the work, not after
             raise BhgrowInputError(f"{out}: run directory exists; refusing to overwrite it "
                                    f"(choose another -o or pass --overwrite)",
                                    source=str(out), rule="exists")
-    result = run_model(forest, config, progress=progress, trees_path=path)
+        if not out.parent.exists():
+            raise BhgrowInputError(f"{out}: parent directory {out.parent} does not exist",
+                                   source=str(out), rule="no_dir")
+        partial = Checkpoint.directory_for(out)
+        if partial.exists() and not resume and overwrite:
+            shutil.rmtree(partial)
+    result = run_model(forest, config, progress=progress, trees_path=path, workers=workers,
+                       dask=dask, checkpoint_dir=partial, resume=resume)
     if out is not None:
         write_run(result, config, out, overwrite=overwrite)
+        shutil.rmtree(partial, ignore_errors=True)
     return result

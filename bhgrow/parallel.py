@@ -1,0 +1,610 @@
+"""Chunks of whole forests: planning, local worker processes, Dask, checkpoints.
+
+The engine (:func:`bhgrow.engine.run_forest`) runs on any set of whole forests and its
+results do not depend on which forests share a chunk (random draws are keyed by seed and
+node / black-hole id; substeps are chosen per halo). A run is therefore a list of
+independent chunks:
+
+1. :func:`plan_chunks` cuts the forests into chunks by estimated cost (node count),
+   largest first (longest-processing-time-first scheduling, Graham 1969, SIAM J. Appl.
+   Math. 17, 416): a forest at least as large as the target chunk size runs alone, the rest
+   are packed so chunks come out of similar size, and chunks are handed out largest first
+   so a giant forest never waits behind a queue of small ones.
+2. :func:`run_chunks` runs the chunks in this process, in local worker processes
+   (:class:`concurrent.futures.ProcessPoolExecutor`; each worker holds the forest once and
+   receives only forest ids), or on a ``dask.distributed`` cluster (each task receives its
+   sub-forest); results come back in plan order, whatever order they finish in.
+3. :class:`Checkpoint` writes every finished chunk at once and atomically into
+   ``<run dir>.partial/``; a resumed run reuses the finished chunks and runs the rest, so an
+   interrupted run loses at most the chunks in flight.
+
+The caller (:func:`bhgrow.pipeline.run_model`) merges the chunk results and sorts every
+table by id / time, so the products are the same, bit for bit, for any plan and any number
+of workers.
+
+Cost model
+----------
+The engine's cost is ~linear in nodes plus a fixed part per chunk (the per-snapshot
+substep loop runs as often as the stiffest halo of the chunk needs), so more chunks than
+workers only adds overhead: with ``n_workers`` workers and fewer than ``n_workers *
+max_nodes`` nodes, the plan makes about ``n_workers`` chunks of equal node count.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import heapq
+import json
+import math
+import os
+import pickle
+import shutil
+import sys
+import threading
+import time
+from dataclasses import dataclass, replace
+from pathlib import Path
+
+import numpy as np
+
+from . import __version__, engine
+from .errors import BhgrowInputError
+
+# run-settings keys that choose how a run executes, not what it computes (left out of the
+# checkpoint's config hash, so a run may resume with another chunk size, worker count or
+# backend)
+EXECUTION_KEYS = ("workers", "dask_scheduler", "chunk_nodes")
+CHECKPOINT_FORMAT = "bhgrow-checkpoint"
+CHECKPOINT_SCHEMA = 1
+DASK_HINT = "pip install -e '.[dask]'"
+
+
+# ------------------------------------------------------------------------------------------
+# planning
+# ------------------------------------------------------------------------------------------
+def plan_chunks(nodes_per_forest, max_nodes: int, n_workers: int = 1, *,
+                forest_ids=None) -> list:
+    """Cut forests into chunks of whole forests by cost, largest chunk first.
+
+    Parameters
+    ----------
+    nodes_per_forest : array_like of int
+        Node count of each forest (the cost estimate), aligned with ``forest_ids``.
+    max_nodes : int
+        Largest chunk, in nodes (>= 1); a single forest above it forms a chunk of its own.
+    n_workers : int
+        Workers that will run the chunks in parallel (>= 1). With fewer than
+        ``n_workers * max_nodes`` nodes the target chunk size drops to ``total / n_workers``
+        so every worker gets a share.
+    forest_ids : array_like of int, optional
+        Forest ids; default ``0 .. n-1`` (positions).
+
+    Returns
+    -------
+    list of ndarray of int64
+        Forest ids of each chunk (sorted within a chunk); chunks in order of decreasing
+        node count (ties: smallest forest id first). Every forest appears exactly once.
+
+    Notes
+    -----
+    Forests with at least the target node count run alone. The others are taken in order
+    of decreasing cost and each goes to the least-loaded open chunk if it fits under
+    ``max_nodes``, else opens a new chunk ("worst fit decreasing"; the list-scheduling rule
+    of Graham 1969, SIAM J. Appl. Math. 17, 416). The plan depends only on the inputs.
+    """
+    cost = np.asarray(nodes_per_forest, dtype=np.int64)
+    if cost.ndim != 1:
+        raise BhgrowInputError("`nodes_per_forest` of plan_chunks must be one-dimensional")
+    ids = (np.arange(cost.size, dtype=np.int64) if forest_ids is None
+           else np.asarray(forest_ids, dtype=np.int64))
+    if ids.shape != cost.shape:
+        raise BhgrowInputError(f"plan_chunks: {ids.size} forest ids for {cost.size} costs")
+    if isinstance(max_nodes, bool) or int(max_nodes) != max_nodes or max_nodes < 1:
+        raise BhgrowInputError(f"`max_nodes` of plan_chunks must be an integer >= 1; got "
+                               f"{max_nodes!r}")
+    if isinstance(n_workers, bool) or int(n_workers) != n_workers or n_workers < 1:
+        raise BhgrowInputError(f"`n_workers` of plan_chunks must be an integer >= 1; got "
+                               f"{n_workers!r}")
+    if cost.size == 0:
+        return []
+    if np.any(cost < 0):
+        raise BhgrowInputError("`nodes_per_forest` of plan_chunks must be >= 0")
+    total = int(cost.sum())
+    target = max(1, min(int(max_nodes), math.ceil(total / int(n_workers))))
+    # largest first; equal costs in id order (deterministic)
+    order = np.lexsort((ids, -cost))
+    alone = order[cost[order] >= target]
+    rest = order[cost[order] < target]
+    chunks = [[int(i)] for i in alone]
+    loads = [int(cost[i]) for i in alone]
+    if rest.size:
+        rest_total = int(cost[rest].sum())
+        k = max(math.ceil(rest_total / int(max_nodes)), int(n_workers) - len(alone), 1)
+        k = min(k, int(rest.size))
+        bins: list = [[] for _ in range(k)]
+        heap = [(0, b) for b in range(k)]          # (load, bin): least loaded, then lowest bin
+        for i in rest:
+            c = int(cost[i])
+            load, b = heap[0]
+            if load + c > max_nodes and load > 0:   # does not fit anywhere: open a chunk
+                b = len(bins)
+                bins.append([])
+                load = 0
+                heapq.heappush(heap, (c, b))
+            else:
+                heapq.heapreplace(heap, (load + c, b))
+            bins[b].append(int(i))
+        final = {b: load for load, b in heap}
+        for b, members in enumerate(bins):
+            if members:
+                chunks.append(members)
+                loads.append(final[b])
+    out = [np.sort(ids[np.asarray(m, dtype=np.int64)]) for m in chunks]
+    rank = sorted(range(len(out)), key=lambda j: (-loads[j], int(out[j][0])))
+    return [out[j] for j in rank]
+
+
+def n_local_workers(workers: int) -> int:
+    """Worker processes for ``workers`` (0 = one per CPU core)."""
+    if workers == 0:
+        return max(1, len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity")
+                   else (os.cpu_count() or 1))
+    return int(workers)
+
+
+# ------------------------------------------------------------------------------------------
+# digests (what a checkpoint must match)
+# ------------------------------------------------------------------------------------------
+def forest_sha256(forest) -> str:
+    """SHA-256 of a forest's content (node columns, snapshots, weights, box), any format."""
+    h = hashlib.sha256()
+
+    def add(name, arr):
+        a = np.ascontiguousarray(arr)
+        h.update(f"{name}:{a.dtype.str}:{a.shape}".encode())
+        h.update(a.tobytes())
+
+    for name in ("node_id", "desc_id", "forest_id", "snap", "mass_msun", "forest_ids"):
+        add(name, getattr(forest, name))
+    add("snapshots.snap", forest.snapshots.snap)
+    add("snapshots.z", forest.snapshots.z)
+    for name in sorted(forest.extra):
+        add(f"extra.{name}", forest.extra[name])
+    if forest.forest_weight is not None:
+        add("forest_weight", forest.forest_weight)
+    h.update(f"box_mpc:{forest.box_mpc!r}".encode())
+    return h.hexdigest()
+
+
+def config_sha256(config) -> str:
+    """SHA-256 of the resolved config without the execution keys, plus the bhgrow version."""
+    table = dict(config.table)
+    table["run"] = {k: v for k, v in table.get("run", {}).items() if k not in EXECUTION_KEYS}
+    text = json.dumps(table, sort_keys=True, default=str)
+    return hashlib.sha256(f"bhgrow {__version__}\n{text}".encode()).hexdigest()
+
+
+def code_sha256() -> str:
+    """SHA-256 of bhgrow's own source files (a resumed run must run the same code)."""
+    h = hashlib.sha256()
+    root = Path(__file__).resolve().parent
+    for path in sorted(root.rglob("*.py")):
+        h.update(path.relative_to(root).as_posix().encode())
+        h.update(path.read_bytes())
+    return h.hexdigest()
+
+
+def _ids_sha256(ids) -> str:
+    return hashlib.sha256(np.ascontiguousarray(ids, dtype=np.int64).tobytes()).hexdigest()
+
+
+# ------------------------------------------------------------------------------------------
+# checkpoints
+# ------------------------------------------------------------------------------------------
+def _atomic_write(path: Path, data: bytes) -> None:
+    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
+    with open(tmp, "wb") as fh:
+        fh.write(data)
+        fh.flush()
+        os.fsync(fh.fileno())
+    os.replace(tmp, path)
+
+
+class Checkpoint:
+    """Finished chunks of a run, kept in ``<run dir>.partial/`` until the run is written.
+
+    Layout: ``manifest.json`` (format, bhgrow version, SHA-256 of the config, of the trees
+    and of bhgrow's source, the chunk plan as forest ids per chunk) and
+    ``chunks/chunk-00012.pkl`` per finished chunk (a hash of its forest ids and its engine
+    result), each written to a temporary file and renamed into place.
+
+    Use :meth:`open`; :attr:`plan` is the plan in force (on resume: the finished chunks
+    first, then the remaining forests planned afresh).
+    """
+
+    def __init__(self, directory, plan: list, digests: dict):
+        self.directory = Path(directory)
+        self.plan = plan
+        self.digests = dict(digests)
+        self.n_reused = 0
+        self._finished: dict = {}
+
+    @staticmethod
+    def directory_for(out) -> Path:
+        """The checkpoint directory of run directory ``out``: ``<out>.partial``."""
+        out = Path(out)
+        return out.with_name(f"{out.name}.partial")
+
+    @classmethod
+    def open(cls, directory, plan: list, *, config_sha256: str, trees_sha256: str,
+             resume: bool = False, replan=None) -> "Checkpoint":
+        """Start a checkpoint, or (``resume``) continue the one in ``directory``.
+
+        Parameters
+        ----------
+        directory : path
+        plan : list of ndarray
+            Chunk plan of a fresh run (forest ids per chunk).
+        config_sha256, trees_sha256 : str
+            :func:`config_sha256` and :func:`forest_sha256` of this run.
+        resume : bool
+            Continue an existing checkpoint (else an existing one is refused).
+        replan : callable, optional
+            On resume, ``replan(forest_ids) -> plan`` for the forests not yet finished, so a
+            resumed run may use another chunk size or worker count; default: keep the
+            stored plan.
+
+        Raises
+        ------
+        BhgrowInputError
+            ``directory`` exists and ``resume`` is false; or it belongs to a run with another
+            config, other trees or other bhgrow code; or its manifest is unreadable.
+        """
+        directory = Path(directory)
+        digests = {"config_sha256": config_sha256, "trees_sha256": trees_sha256,
+                   "code_sha256": code_sha256()}
+        manifest = directory / "manifest.json"
+        if not directory.exists():
+            (directory / "chunks").mkdir(parents=True)
+            ck = cls(directory, plan, digests)
+            ck._write_manifest()
+            return ck
+        if not resume:
+            raise BhgrowInputError(
+                f"{directory}: checkpoint of an interrupted run exists; pass --resume to "
+                f"continue it, or --overwrite to discard it", source=str(directory),
+                rule="checkpoint_exists")
+        try:
+            info = json.loads(manifest.read_text())
+            if info.get("format") != CHECKPOINT_FORMAT:
+                raise ValueError("not a bhgrow checkpoint")
+            old_plan = [np.asarray(c, dtype=np.int64) for c in info["chunks"]]
+        except (OSError, ValueError, KeyError, TypeError) as exc:
+            raise BhgrowInputError(f"{manifest}: cannot resume from it ({exc}); pass "
+                                   f"--overwrite (without --resume) to start afresh",
+                                   source=str(manifest), rule="bad_checkpoint") from None
+        changed = [k.removesuffix("_sha256") for k, v in digests.items() if info.get(k) != v]
+        if changed:
+            raise BhgrowInputError(
+                f"{directory}: checkpoint made with different {' and '.join(changed)}; it "
+                f"cannot be resumed — pass --overwrite (without --resume) to discard it",
+                source=str(directory), rule="checkpoint_mismatch")
+        ck = cls(directory, old_plan, digests)
+        finished = ck._read_finished()
+        if replan is not None:
+            keep = sorted(finished)
+            done_ids = (np.concatenate([old_plan[i] for i in keep]) if keep
+                        else np.zeros(0, np.int64))
+            rest = np.setdiff1d(np.concatenate(old_plan), done_ids)
+            new_plan = [old_plan[i] for i in keep] + (list(replan(rest)) if rest.size else [])
+            ck._renumber(keep, new_plan)
+            finished = {j: finished[i] for j, i in enumerate(keep)}
+        ck._finished = finished
+        ck.n_reused = len(finished)
+        return ck
+
+    def _write_manifest(self) -> None:
+        info = {"format": CHECKPOINT_FORMAT, "schema_version": CHECKPOINT_SCHEMA,
+                "bhgrow_version": __version__, **self.digests, "n_chunks": len(self.plan),
+                "chunks": [np.asarray(c).tolist() for c in self.plan]}
+        _atomic_write(self.directory / "manifest.json", (json.dumps(info) + "\n").encode())
+
+    def _renumber(self, keep: list, new_plan: list) -> None:
+        """Move finished chunks ``keep`` (ascending) to positions 0.. of ``new_plan``.
+
+        A crash half-way only costs work: a chunk file whose forest ids do not match the
+        manifest is ignored and run again.
+        """
+        for j, i in enumerate(keep):            # j <= i: never overwrites a chunk still to move
+            if i != j:
+                os.replace(self.chunk_path(i), self.chunk_path(j))
+        for p in (self.directory / "chunks").iterdir():
+            stale = p.name.startswith(".") or (p.name.startswith("chunk-") and int(
+                p.stem.split("-")[1]) >= len(keep))
+            if stale:
+                p.unlink()
+        self.plan = new_plan
+        self._write_manifest()
+
+    def chunk_path(self, index: int) -> Path:
+        return self.directory / "chunks" / f"chunk-{index:05d}.pkl"
+
+    def save(self, index: int, result) -> None:
+        """Write the result of chunk ``index`` (atomically)."""
+        blob = {"forest_ids_sha256": _ids_sha256(self.plan[index]), "result": result}
+        _atomic_write(self.chunk_path(index), pickle.dumps(blob, protocol=5))
+
+    def _read_finished(self) -> dict:
+        out = {}
+        for i in range(len(self.plan)):
+            p = self.chunk_path(i)
+            if not p.exists():
+                continue
+            try:
+                with open(p, "rb") as fh:
+                    blob = pickle.load(fh)
+                if blob["forest_ids_sha256"] == _ids_sha256(self.plan[i]):
+                    out[i] = blob["result"]
+            except Exception:  # noqa: BLE001 - a damaged file only means: run it again
+                continue
+        return out
+
+    def load_finished(self) -> dict:
+        """``{index: result}`` of the intact chunk files that match the plan (read on open).
+
+        A file that cannot be read or does not match its chunk's forest ids is ignored (the
+        chunk runs again and the file is replaced).
+        """
+        return dict(self._finished)
+
+    def remove(self) -> None:
+        shutil.rmtree(self.directory, ignore_errors=True)
+
+
+# ------------------------------------------------------------------------------------------
+# running chunks
+# ------------------------------------------------------------------------------------------
+def compact_result(result):
+    """An EngineResult fit to ship between processes: no forest, history in one part."""
+    cols = result.history.columns()
+    history = engine.History(parts=[tuple(cols.values())])
+    return replace(result, forest=None, history=history)
+
+
+def _sub_forest(forest, ids):
+    ids = np.asarray(ids, dtype=np.int64)
+    if ids.size == forest.n_forests:
+        return forest
+    return forest.select_forests(ids)
+
+
+def run_one_chunk(forest, ids, model, run, cosmo):
+    """Run the engine on the forests ``ids`` of ``forest``; a compact EngineResult."""
+    return compact_result(engine.run_forest(_sub_forest(forest, ids), model, run, cosmo))
+
+
+_WORKER: dict = {}
+
+
+def _init_worker(forest, model, run, cosmo) -> None:
+    import signal
+
+    # Ctrl-C goes to the parent, which stops the workers itself (no tracebacks from them)
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    _WORKER.update(forest=forest, model=model, run=run, cosmo=cosmo)
+    threading.Thread(target=_exit_with_parent, args=(os.getppid(),), daemon=True).start()
+
+
+def _exit_with_parent(ppid: int) -> None:
+    """A worker whose parent was killed (SIGKILL, OOM killer) exits instead of lingering."""
+    while os.getppid() == ppid:
+        time.sleep(1.0)
+    os._exit(1)
+
+
+def _worker_chunk(index: int, ids):
+    w = _WORKER
+    return index, run_one_chunk(w["forest"], ids, w["model"], w["run"], w["cosmo"])
+
+
+def _dask_chunk(index: int, sub, model, run, cosmo):
+    return index, compact_result(engine.run_forest(sub, model, run, cosmo))
+
+
+def default_start_method() -> str:
+    """``fork`` on Linux (workers inherit the forest, nothing to import), else ``spawn``."""
+    return "fork" if sys.platform.startswith("linux") else "spawn"
+
+
+def connect_dask(address):
+    """A ``dask.distributed.Client`` for a scheduler address (or the client passed in).
+
+    Returns
+    -------
+    (client, owned) : the client, and whether this call opened it (then close it).
+    """
+    try:
+        from dask.distributed import Client
+    except ImportError:
+        raise BhgrowInputError(f"the Dask backend needs dask.distributed, which is not "
+                               f"installed: {DASK_HINT}", rule="missing_dependency") from None
+    if isinstance(address, Client):
+        return address, False
+    try:
+        return Client(str(address), timeout="20s", set_as_default=False), True
+    except (OSError, TimeoutError, ValueError) as exc:
+        raise BhgrowInputError(f"cannot reach the Dask scheduler at {address!r}: {exc}",
+                               source=str(address), rule="dask_unreachable") from None
+
+
+def dask_slots(client) -> int:
+    """Worker threads of a Dask cluster (at least 1)."""
+    try:
+        return max(1, int(sum(client.nthreads().values())))
+    except Exception:  # noqa: BLE001 - informational only
+        return 1
+
+
+def run_chunks(forest, plan: list, model, run, cosmo, *, workers: int = 1, client=None,
+               checkpoint: Checkpoint | None = None, progress: bool = False,
+               start_method: str | None = None) -> list:
+    """Run every chunk of ``plan``; the EngineResults in plan order.
+
+    Parameters
+    ----------
+    forest : Forest
+    plan : list of ndarray
+        Forest ids per chunk (:func:`plan_chunks`), in the order they are handed out.
+    model, run, cosmo
+        As for :func:`bhgrow.engine.run_forest`.
+    workers : int
+        Local worker processes (1 = this process; 0 = one per CPU core). Ignored with
+        ``client``.
+    client : dask.distributed.Client, optional
+        Send chunks to this Dask cluster.
+    checkpoint : Checkpoint, optional
+        Reuse its finished chunks; save each new one as soon as it is done.
+    progress : bool
+        tqdm progress bar over chunks.
+    start_method : str, optional
+        multiprocessing start method for local workers (default
+        :func:`default_start_method`).
+
+    Returns
+    -------
+    list of EngineResult
+        Compact results (``forest`` is None), aligned with ``plan``.
+
+    Raises
+    ------
+    BhgrowInputError
+        A worker process died (killed, out of memory); finished chunks stay in the
+        checkpoint for ``--resume``.
+    """
+    from tqdm.auto import tqdm
+
+    results: list = [None] * len(plan)
+    if checkpoint is not None:
+        for i, r in checkpoint.load_finished().items():
+            results[i] = r
+    todo = [i for i in range(len(plan)) if results[i] is None]
+    n_proc = min(n_local_workers(workers), len(todo))
+    bars = []
+
+    def open_bar():   # after local workers are forked (no tqdm monitor thread in them)
+        if not bars:
+            bars.append(tqdm(total=len(plan), initial=len(plan) - len(todo), desc="forests",
+                             unit="chunk", disable=not progress or len(plan) < 2))
+
+    def done(i, r):
+        results[i] = r
+        if checkpoint is not None:
+            checkpoint.save(i, r)
+        open_bar()
+        bars[0].update(1)
+
+    interrupted = False
+    try:
+        if not todo:
+            pass
+        elif client is not None:
+            open_bar()
+            _run_dask(client, forest, plan, todo, model, run, cosmo, done)
+        elif n_proc <= 1:
+            open_bar()
+            for i in todo:
+                done(i, run_one_chunk(forest, plan[i], model, run, cosmo))
+        else:
+            _run_pool(n_proc, forest, plan, todo, model, run, cosmo, done, open_bar,
+                      start_method or default_start_method(), checkpoint)
+    except KeyboardInterrupt:
+        interrupted = True
+        raise
+    finally:
+        for bar in bars:
+            bar.close()
+        if interrupted and checkpoint is not None and progress:
+            n = sum(r is not None for r in results)
+            print(f"bhgrow: {n} of {len(plan)} chunks kept in {checkpoint.directory}; "
+                  f"continue with --resume", file=sys.stderr)
+    return results
+
+
+def _terminate(pool) -> None:
+    """Stop the pool's own worker processes now (their chunks are lost anyway)."""
+    for p in list((getattr(pool, "_processes", None) or {}).values()):
+        try:
+            p.terminate()
+        except Exception:  # noqa: BLE001 - already gone
+            pass
+    pool.shutdown(wait=False, cancel_futures=True)
+
+
+def _run_pool(n_proc, forest, plan, todo, model, run, cosmo, done, started, start_method,
+              checkpoint) -> None:
+    import multiprocessing as mp
+    from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
+    from concurrent.futures.process import BrokenProcessPool
+
+    pool = ProcessPoolExecutor(max_workers=n_proc, mp_context=mp.get_context(start_method),
+                               initializer=_init_worker, initargs=(forest, model, run, cosmo))
+    try:
+        index = {pool.submit(_worker_chunk, i, plan[i]): i for i in todo}  # largest first
+        pending = set(index)
+        started()
+        while pending:
+            finished, pending = wait(pending, return_when=FIRST_COMPLETED)
+            for fut in sorted(finished, key=index.get):
+                i, r = fut.result()
+                done(i, r)
+    except BrokenProcessPool:
+        _terminate(pool)
+        kept = (f"; finished chunks are kept in {checkpoint.directory}: rerun with --resume"
+                if checkpoint is not None else "")
+        raise BhgrowInputError(f"a worker process died (killed, or out of memory?) while "
+                               f"running chunks of whole forests{kept}. If memory ran out, "
+                               f"use fewer --workers or a smaller run.chunk_nodes",
+                               rule="worker_lost") from None
+    except BaseException:
+        _terminate(pool)
+        raise
+    pool.shutdown(wait=True)
+
+
+def _run_dask(client, forest, plan, todo, model, run, cosmo, done) -> None:
+    from dask.distributed import as_completed
+
+    window = 2 * dask_slots(client)    # sub-forests in flight (bounds the parent's memory)
+    queue = list(todo)
+    token = hashlib.sha256(os.urandom(16)).hexdigest()[:12]
+
+    def submit(i):
+        [sub] = client.scatter([_sub_forest(forest, plan[i])], hash=False)
+        return client.submit(_dask_chunk, i, sub, model, run, cosmo, pure=False,
+                             key=f"bhgrow-chunk-{i:05d}-{token}")
+
+    live = {}
+    for _ in range(min(window, len(queue))):
+        f = submit(queue.pop(0))
+        live[f.key] = f
+    ac = as_completed(list(live.values()), loop=client.loop)
+    try:
+        for fut in ac:
+            i, r = fut.result()
+            live.pop(fut.key, None)
+            fut.release()
+            done(i, r)
+            if queue:
+                nxt = submit(queue.pop(0))
+                live[nxt.key] = nxt
+                ac.add(nxt)
+    except BaseException as exc:
+        client.cancel(list(live.values()))
+        if type(exc).__name__ == "KilledWorker":
+            raise BhgrowInputError(f"Dask workers died (killed, or out of memory?) while "
+                                   f"running a chunk: {exc}", rule="worker_lost") from None
+        if isinstance(exc, ImportError) and "bhgrow" in str(exc):
+            raise BhgrowInputError(f"the Dask workers cannot import bhgrow ({exc}); install "
+                                   f"it on every worker (pip install -e .)",
+                                   rule="dask_workers") from None
+        raise

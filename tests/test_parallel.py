@@ -1,0 +1,288 @@
+"""Chunk planning, worker processes, Dask, checkpoint and resume (bhgrow/parallel.py).
+
+Every run here must give the same black holes, mergers, pending pairs and histories, bit for
+bit, whatever the chunk plan, worker count or backend: random draws are keyed by (seed,
+node / black-hole id) and substeps are chosen per halo, and the merged tables are sorted by
+id and time. Runs use ``max_substeps = 4`` to stay fast; the property does not depend on it.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import sys
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from bhgrow import engine
+from bhgrow.cli import main
+from bhgrow.config import from_table
+from bhgrow.errors import BhgrowInputError
+from bhgrow.parallel import Checkpoint, plan_chunks
+from bhgrow.pipeline import demo_trees_path, run_model
+from bhgrow.trees import load_forest, write_hdf5
+
+FAST = {"max_substeps": 4}
+
+
+@pytest.fixture(scope="module")
+def sub():
+    f = load_forest(demo_trees_path())
+    return f.select_forests(f.forest_ids[::20])
+
+
+@pytest.fixture(scope="module")
+def reference(sub):
+    """One chunk, this process."""
+    r = run_model(sub, from_table({"run": {**FAST, "chunk_nodes": 10**9}}), workers=1)
+    assert r.provenance["n_chunks"] == 1
+    return r
+
+
+def assert_same(a, b):
+    for name in ("black_holes", "mergers", "pending"):
+        ta, tb = getattr(a, name), getattr(b, name)
+        assert ta.colnames == tb.colnames
+        assert len(ta) == len(tb), name
+        for col in ta.colnames:
+            np.testing.assert_array_equal(ta[col], tb[col], err_msg=f"{name}.{col}")
+    assert a.histories.keys() == b.histories.keys()
+    for col in a.histories:
+        np.testing.assert_array_equal(a.histories[col], b.histories[col], err_msg=col)
+    np.testing.assert_array_equal(a.ledger["per_forest_residual"],
+                                  b.ledger["per_forest_residual"])
+    for key in ("total_final_msun", "total_seed_msun", "total_growth_msun",
+                "total_radiated_msun", "total_ejected_msun"):
+        assert a.ledger[key] == b.ledger[key], key
+    assert a.n_seeds == b.n_seeds
+
+
+# ------------------------------------------------------------------ planning
+def test_plan_giant_forest_alone_and_first():
+    cost = np.array([5, 3, 1000, 4, 2, 6, 1, 7])
+    plan = plan_chunks(cost, max_nodes=20, n_workers=1, forest_ids=np.arange(8) + 100)
+    assert [c.tolist() for c in plan[:1]] == [[102]]
+    loads = [int(cost[c - 100].sum()) for c in plan]
+    assert loads == sorted(loads, reverse=True)
+    assert all(load <= 20 for load in loads[1:])
+    assert sorted(np.concatenate(plan).tolist()) == list(range(100, 108))
+
+
+def test_plan_one_chunk_per_worker_when_everything_fits():
+    cost = np.arange(1, 41)
+    assert len(plan_chunks(cost, 10**6, 1)) == 1
+    plan = plan_chunks(cost, 10**6, 4)
+    loads = sorted(int(cost[c].sum()) for c in plan)
+    assert len(plan) == 4
+    # longest-processing-time bound (Graham 1969): max load <= mean + largest job
+    assert loads[-1] <= cost.sum() / 4 + cost.max()
+    assert loads[-1] - loads[0] <= cost.max()
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.lists(st.integers(0, 500), min_size=1, max_size=80), st.integers(1, 900),
+       st.integers(1, 6))
+def test_plan_properties(costs, max_nodes, n_workers):
+    cost = np.array(costs)
+    ids = np.arange(cost.size) * 7 + 3
+    plan = plan_chunks(cost, max_nodes, n_workers, forest_ids=ids)
+    again = plan_chunks(cost, max_nodes, n_workers, forest_ids=ids)
+    assert len(again) == len(plan) and all(np.array_equal(a, b) for a, b in zip(plan, again))
+    flat = np.concatenate(plan)
+    assert np.array_equal(np.sort(flat), ids)                 # every forest exactly once
+    pos = {int(f): i for i, f in enumerate(ids)}
+    loads = [int(sum(cost[pos[int(f)]] for f in c)) for c in plan]
+    assert loads == sorted(loads, reverse=True)               # largest first
+    for c, load in zip(plan, loads):
+        assert np.all(np.diff(c) > 0)
+        assert load <= max_nodes or c.size == 1               # only a giant exceeds the cap
+
+
+def test_plan_rejects_bad_arguments():
+    with pytest.raises(BhgrowInputError):
+        plan_chunks([1, 2], 0)
+    with pytest.raises(BhgrowInputError):
+        plan_chunks([1, 2], 10, n_workers=0)
+    with pytest.raises(BhgrowInputError):
+        plan_chunks([1, 2], 10, forest_ids=[1])
+    assert plan_chunks([], 10) == []
+
+
+# ------------------------------------------------------------------ local workers
+def test_workers_and_chunking_do_not_change_results(sub, reference):
+    cfg = from_table({"run": {**FAST, "chunk_nodes": 6000}})
+    one = run_model(sub, cfg, workers=1)
+    two = run_model(sub, cfg, workers=2)
+    assert one.provenance["n_chunks"] > 2 and one.provenance["backend"] == "serial"
+    assert two.provenance["backend"] == "processes" and two.provenance["workers"] == 2
+    assert_same(reference, one)
+    assert_same(reference, two)
+    # the config key does the same as the argument
+    three = run_model(sub, from_table({"run": {**FAST, "chunk_nodes": 10**9, "workers": 2}}))
+    assert three.provenance["n_chunks"] == 2
+    assert_same(reference, three)
+
+
+def test_workers_option_validation(capsys):
+    with pytest.raises(BhgrowInputError, match="`workers` of run must be >= 0"):
+        from_table({"run": {"workers": -1}})
+    assert main(["demo", "-o", "x", "--workers", "-2", "--no-progress"]) == 2
+    assert "--workers" in capsys.readouterr().err
+
+
+# ------------------------------------------------------------------ Dask
+def test_dask_missing_says_how_to_install(sub, monkeypatch):
+    monkeypatch.setitem(sys.modules, "dask.distributed", None)    # import fails
+    with pytest.raises(BhgrowInputError, match=r"pip install -e '\.\[dask\]'"):
+        run_model(sub, from_table({"run": FAST}), dask="tcp://127.0.0.1:1")
+
+
+def test_dask_local_cluster_gives_identical_results(sub, reference):
+    distributed = pytest.importorskip("dask.distributed")
+    cfg = from_table({"run": {**FAST, "chunk_nodes": 8000}})
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+                                  dashboard_address=None) as cluster:
+        r = run_model(sub, cfg, dask=cluster.scheduler_address)
+    assert r.provenance["backend"] == "dask" and r.provenance["n_chunks"] > 2
+    assert_same(reference, r)
+
+
+# ------------------------------------------------------------------ checkpoint and resume
+@pytest.fixture(scope="module")
+def small(tmp_path_factory, sub):
+    """Trees file, a config with small chunks, and an uninterrupted run directory."""
+    d = tmp_path_factory.mktemp("resume")
+    trees = d / "trees.h5"
+    write_hdf5(sub.select_forests(sub.forest_ids[::2]), trees)
+    cfg = d / "c.toml"
+    cfg.write_text("[run]\nmax_substeps = 4\nchunk_nodes = 3000\n")
+    ref = d / "ref"
+    assert main(["run", str(cfg), "--trees", str(trees), "-o", str(ref), "--no-progress"]) == 0
+    n_chunks = json.loads((ref / "run.json").read_text())["n_chunks"]
+    assert n_chunks >= 4
+    return {"trees": trees, "cfg": cfg, "ref": ref, "n_chunks": n_chunks}
+
+
+PRODUCTS = ("black_holes.ecsv", "mergers.ecsv", "pending_pairs.ecsv")
+
+
+def _same_products(a, b):
+    for name in PRODUCTS:
+        assert (a / name).read_text() == (b / name).read_text(), name
+
+
+def _counting(monkeypatch, stop_after=None):
+    """Wrap engine.run_forest: count calls; raise KeyboardInterrupt after ``stop_after``."""
+    real = engine.run_forest
+    calls = []
+
+    def wrapped(forest, *args):
+        if stop_after is not None and len(calls) >= stop_after:
+            raise KeyboardInterrupt
+        calls.append(forest.n_forests)
+        return real(forest, *args)
+
+    monkeypatch.setattr(engine, "run_forest", wrapped)
+    return calls
+
+
+def test_interrupted_run_resumes_to_identical_products(tmp_path, small, monkeypatch, capsys):
+    out = tmp_path / "run"
+    partial = Checkpoint.directory_for(out)
+    args = ["run", str(small["cfg"]), "--trees", str(small["trees"]), "-o", str(out),
+            "--no-progress"]
+    _counting(monkeypatch, stop_after=2)                      # Ctrl-C during the 3rd chunk
+    assert main(args) == 130
+    assert not out.exists()
+    files = sorted(p.name for p in (partial / "chunks").iterdir())
+    assert files == ["chunk-00000.pkl", "chunk-00001.pkl"]    # no temporary leftovers
+    manifest = json.loads((partial / "manifest.json").read_text())
+    assert len(manifest["chunks"]) == small["n_chunks"]
+    n_total = sum(len(c) for c in manifest["chunks"])
+    n_done = sum(len(c) for c in manifest["chunks"][:2])
+    # a leftover checkpoint is never silently reused or overwritten
+    monkeypatch.undo()
+    assert main(args) == 2
+    assert "--resume" in capsys.readouterr().err
+    # resume: only the forests of unfinished chunks run
+    calls = _counting(monkeypatch)
+    assert main(args + ["--resume"]) == 0
+    assert sum(calls) == n_total - n_done
+    assert not partial.exists()
+    _same_products(small["ref"], out)
+    run = json.loads((out / "run.json").read_text())
+    assert run["n_chunks_resumed"] == 2
+
+
+def test_resume_with_another_chunk_size_runs_only_the_rest(tmp_path, small, monkeypatch):
+    out = tmp_path / "run"
+    cfg_b = tmp_path / "b.toml"
+    cfg_b.write_text(small["cfg"].read_text().replace("chunk_nodes = 3000",
+                                                      "chunk_nodes = 100000"))
+    args = ["--trees", str(small["trees"]), "-o", str(out), "--no-progress"]
+    _counting(monkeypatch, stop_after=3)
+    assert main(["run", str(small["cfg"]), *args]) == 130
+    manifest = json.loads((Checkpoint.directory_for(out) / "manifest.json").read_text())
+    n_total = sum(len(c) for c in manifest["chunks"])
+    n_done = sum(len(c) for c in manifest["chunks"][:3])
+    monkeypatch.undo()
+    calls = _counting(monkeypatch)
+    assert main(["run", str(cfg_b), *args, "--resume"]) == 0
+    assert len(calls) == 1 and sum(calls) == n_total - n_done
+    _same_products(small["ref"], out)
+    assert json.loads((out / "run.json").read_text())["n_chunks"] == 4
+
+
+def test_resume_refuses_a_checkpoint_of_another_config(tmp_path, small, monkeypatch, capsys):
+    out = tmp_path / "run"
+    args = ["--trees", str(small["trees"]), "-o", str(out), "--no-progress"]
+    _counting(monkeypatch, stop_after=1)
+    assert main(["run", str(small["cfg"]), *args]) == 130
+    monkeypatch.undo()
+    other = tmp_path / "other.toml"
+    other.write_text(small["cfg"].read_text() + "seed = 7\n")
+    assert main(["run", str(other), *args, "--resume"]) == 2
+    assert "different config" in capsys.readouterr().err
+    # --overwrite (without --resume) discards it and starts afresh; the worker count and
+    # backend are not part of the checkpoint's identity
+    calls = _counting(monkeypatch)
+    assert main(["run", str(small["cfg"]), *args, "--overwrite"]) == 0
+    assert len(calls) == small["n_chunks"]
+    _same_products(small["ref"], out)
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="fork start method")
+def test_killed_worker_loses_only_chunks_in_flight(tmp_path, small, monkeypatch, capsys):
+    out = tmp_path / "run"
+    args = ["run", str(small["cfg"]), "--trees", str(small["trees"]), "-o", str(out),
+            "--no-progress", "--workers", "2"]
+    real = engine.run_forest
+    parent = os.getpid()
+    manifest = {}
+
+    def killer(forest, *a):
+        # the worker that gets the last chunk of the plan dies as if killed by the OS
+        if os.getpid() != parent and np.array_equal(forest.forest_ids, manifest["last"]):
+            os.kill(os.getpid(), signal.SIGKILL)
+        return real(forest, *a)
+
+    # the plan is known before any chunk runs: read it from the manifest via a first
+    # interrupted attempt that stops before the first chunk
+    _counting(monkeypatch, stop_after=0)
+    assert main(args) == 130
+    monkeypatch.undo()
+    info = json.loads((Checkpoint.directory_for(out) / "manifest.json").read_text())
+    manifest["last"] = np.asarray(info["chunks"][-1])
+    monkeypatch.setattr(engine, "run_forest", killer)          # forked workers inherit it
+    assert main(args + ["--resume"]) == 2
+    err = capsys.readouterr().err
+    assert "worker process died" in err and "--resume" in err
+    assert not out.exists()
+    monkeypatch.undo()
+    assert main(args + ["--resume"]) == 0
+    assert not Checkpoint.directory_for(out).exists()
+    _same_products(small["ref"], out)
