@@ -295,6 +295,8 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
                 if moved.size else 0.0
             excess = gas[ud] + stars[ud] + bh_in - fb * mass_h[ud]
             cut = np.clip(excess, 0.0, gas[ud])
+            metals[ud] *= np.divide(gas[ud] - cut, gas[ud], out=np.zeros(ud.size),
+                                    where=gas[ud] > 0)    # stripped gas takes its metals
             gas[ud] -= cut
             stripped[ud] += cut
 
@@ -372,9 +374,12 @@ def _grow(model, run, bh, cbh, rows, sl, active, gas, stars, metals, outflow, in
                                           g[live] / per_unit[live])
         m_new = np.asarray(m_new, dtype=float)
         accreted = np.asarray(accreted, dtype=float)
-        gl = np.maximum(g[live] - accreted, 0.0)
+        g0 = g[live]
+        gl = np.maximum(g0 - accreted, 0.0)
         removed = np.minimum(accreted * (per_unit[live] - 1.0), gl)
         g[live] = gl - removed
+        # gas leaving by accretion and outflow carries its metals (metallicity unchanged)
+        zm[live] *= np.divide(g[live], g0, out=np.zeros(live.size), where=g0 > 0)
         out[live] += removed
         grown[live] += m_new - m_bh[live]
         taken[live] += accreted
