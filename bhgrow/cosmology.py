@@ -73,6 +73,7 @@ import numpy as np
 from scipy.interpolate import CubicSpline
 
 from . import _validate
+from ._grid import UniformCubicSpline
 from .constants import C_KMS, KPC_PER_KMS_GYR, MPC_KPC, RHO_CRIT0_H2_MSUN_MPC3
 from .errors import BhgrowInputError
 
@@ -92,56 +93,6 @@ _TAIL_STEP = 0.25
 #: tolerance of the range checks (relative in z_max and t, absolute in z at 0): inputs that
 #: miss the range by less than this (round-off, other integrators) are clipped onto it
 _TOL = 1e-9
-
-
-class _UniformSpline:
-    """Cubic spline on a uniform grid, evaluated by index arithmetic and Horner's rule.
-
-    The coefficients are those of scipy's ``CubicSpline`` (not-a-knot); evaluation avoids the
-    binary search of ``PPoly.__call__`` because the grid is uniform.
-    """
-
-    __slots__ = ("x0", "h", "inv_h", "last", "c0", "c1", "c2", "c3")
-
-    def __init__(self, x0: float, h: float, y: np.ndarray):
-        knots = x0 + h * np.arange(y.size)
-        coef = CubicSpline(knots, y).c  # shape (4, n-1): highest power first
-        self.x0 = float(x0)
-        self.h = float(h)
-        self.inv_h = 1.0 / self.h
-        self.last = coef.shape[1] - 1
-        self.c0, self.c1, self.c2, self.c3 = (np.ascontiguousarray(row) for row in coef)
-
-    def _locate(self, x: np.ndarray):
-        # few temporaries on purpose: each new 1e5-element array costs page faults
-        d = x - self.x0
-        d *= self.inv_h
-        i = d.astype(np.intp)
-        np.clip(i, 0, self.last, out=i)
-        d -= i
-        d *= self.h
-        return i, d
-
-    def __call__(self, x: np.ndarray) -> np.ndarray:
-        i, d = self._locate(x)
-        r = np.take(self.c0, i, mode="clip")
-        tmp = np.empty_like(r)
-        r *= d
-        r += np.take(self.c1, i, out=tmp, mode="clip")
-        r *= d
-        r += np.take(self.c2, i, out=tmp, mode="clip")
-        r *= d
-        r += np.take(self.c3, i, out=tmp, mode="clip")
-        return r
-
-    def value_and_slope(self, x: np.ndarray):
-        i, d = self._locate(x)
-        a = np.take(self.c0, i, mode="clip")
-        b = np.take(self.c1, i, mode="clip")
-        c = np.take(self.c2, i, mode="clip")
-        slope = (3.0 * a * d + 2.0 * b) * d + c
-        value = ((a * d + b) * d + c) * d + np.take(self.c3, i, mode="clip")
-        return value, slope
 
 
 class _Tables:
@@ -210,13 +161,13 @@ def _build_tables(astro, z_max: float, hubble_time_gyr: float, hubble_dist_mpc: 
     t = _Tables()
     t.x_max = x_max
     x0 = float(x[0])
-    t.ln_e = _UniformSpline(x0, h, -np.log(inv_e))
+    t.ln_e = UniformCubicSpline(x0, h, -np.log(inv_e))
     ln_age_nodes = np.log(age * hubble_time_gyr)
-    t.ln_age = _UniformSpline(x0, h, ln_age_nodes)
-    t.lookback_x = _UniformSpline(x0, h, lookback_x * hubble_time_gyr)
-    t.dc_x = _UniformSpline(x0, h, dc_x * hubble_dist_mpc)
-    t.dm_x = t.dc_x if ok0 == 0.0 else _UniformSpline(x0, h, dm_x * hubble_dist_mpc)
-    t.dvc_x2 = _UniformSpline(x0, h, dvc_x2)
+    t.ln_age = UniformCubicSpline(x0, h, ln_age_nodes)
+    t.lookback_x = UniformCubicSpline(x0, h, lookback_x * hubble_time_gyr)
+    t.dc_x = UniformCubicSpline(x0, h, dc_x * hubble_dist_mpc)
+    t.dm_x = t.dc_x if ok0 == 0.0 else UniformCubicSpline(x0, h, dm_x * hubble_dist_mpc)
+    t.dvc_x2 = UniformCubicSpline(x0, h, dvc_x2)
 
     # Inverse table x(ln t) on a uniform ln t grid. Node values: start from a spline through
     # the forward nodes (ln t is strictly decreasing in x since dt/dx = -t_H/E), then polish
@@ -229,7 +180,7 @@ def _build_tables(astro, z_max: float, hubble_time_gyr: float, hubble_dist_mpc: 
     for _ in range(3):
         val, slope = t.ln_age.value_and_slope(xs)
         xs = xs - (val - lt) / slope
-    t.x_of_ln_age = _UniformSpline(lo, h_inv, xs)
+    t.x_of_ln_age = UniformCubicSpline(lo, h_inv, xs)
     t.ln_age_max = float(ln_age_nodes[zero])  # today
     t.ln_age_min = float(t.ln_age(np.array([x_max]))[0])  # at z_max
     return t

@@ -55,6 +55,7 @@ from .config import Config, Model, RunSettings
 from .constants import T_EDD_GYR
 from .cosmology import Cosmology
 from .physics import accretion as acc
+from .physics import coupled as cp
 from .physics import seeding as sd
 from .physics.gas import dynamical_time_gyr
 from .trees.forest import Forest
@@ -277,19 +278,25 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
         # --- pass state down the trees ----------------------------------------------------------
         go = rows[has_desc[sl]]
         d = desc[go]
-        np.add.at(gas, d, gas[go])
-        np.add.at(stars, d, stars[go])
-        np.add.at(metals, d, metals[go])
         hosted = np.zeros(rows.size, dtype=bool)
         if len(bh):
             hosted[bh.host[in_slice] - sl.start] = True
         flag = polluted[go] | (stars[go] > 0) | hosted[go - sl.start]
-        np.maximum.at(polluted, d, flag)
+        ud = np.zeros(0, dtype=np.int64)
+        if d.size:
+            # sums over progenitors on the descendants' row range (bincount: no np.add.at)
+            lo = int(d.min())
+            span = int(d.max()) - lo + 1
+            dl = d - lo
+            for arr in (gas, stars, metals):
+                arr[lo:lo + span] += np.bincount(dl, weights=arr[go], minlength=span)
+            got = np.bincount(dl, weights=flag, minlength=span) > 0
+            polluted[lo:lo + span] |= got
+            ud = lo + np.flatnonzero(np.bincount(dl, minlength=span))
         moved = _move_black_holes(bh, in_slice, desc, forest, k, n_snap, t_node, z_node,
                                   mass_h, model, run, cosmo)
         # baryon cap on the receiving descendants: gas above f_b M_desc is stripped (applied
         # at every arrival, so a descendant fed from several snapshots is capped each time)
-        ud = np.unique(d)
         if ud.size:
             bh_in = np.bincount(bh.host[moved], weights=bh.mass[moved], minlength=n)[ud] \
                 if moved.size else 0.0
@@ -314,81 +321,76 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
 
 def _grow(model, run, bh, cbh, rows, sl, active, gas, stars, metals, outflow, inflow, t_dyn,
           v_c, v_esc, r_vir, t_vir, dts, node_keys, k):
-    """Substepped reservoir + accretion + feedback for halos with a central black hole."""
+    """Reservoir, accretion and feedback over the interval for halos with a central hole.
+
+    Solved together, piecewise in closed form (:func:`bhgrow.physics.coupled.advance`), in
+    ``n_i`` substeps per halo (:func:`bhgrow.physics.coupled.substeps`, from that halo
+    alone, so results never depend on which other halos share its snapshot or chunk).
+    """
     a_rows = np.flatnonzero(active)           # local rows
     loc = bh.host[cbh] - sl.start              # local row of each central BH
-    # position of each BH's host within a_rows
-    pos = np.searchsorted(a_rows, loc)
-    hl = a_rows[pos]                           # local host row of each BH (one central each)
+    hl = a_rows[np.searchsorted(a_rows, loc)]  # local host row of each BH (one central each)
     hrow = rows[hl]                            # global host row
-    g = gas[hrow].copy()
-    s = stars[hrow].copy()
-    zm = metals[hrow].copy()
-    I, td, vc, ve = inflow[hl], t_dyn[hl], v_c[hl], v_esc[hl]
-    rv, tv = r_vir[hl], t_vir[hl]
     h_total = dts[hl]
 
-    m_bh = bh.mass[cbh].copy()
-    m_start = m_bh.copy()
     # one accretion episode per interval: its disc orientation (chaotic mode) and hence the
     # radiative efficiency are fixed over the interval; the spin is updated once at its end
     # (Bardeen's coherent invariant makes that exact for any number of substeps)
     u = rng.uniform(rng.stream_keys(run.seed, bh.bh_id[cbh]), k, _P_SPIN)
     eps = np.asarray(model.efficiency.efficiency(model.spin.episode_spin(bh.spin[cbh], u)),
                      dtype=float)
+    loss, lock, metal_rate = model.star_formation.rates(t_dyn[hl], v_c[hl])
+    rv, tv = r_vir[hl], t_vir[hl]
+    rho_1, cs, _ = model.gas_zone.state(1.0, rv, tv)          # zone density per Msun of gas
+    linear = getattr(model.accretion, "linear_in_density", False)
+    g0 = gas[hrow]
+    I = inflow[hl]
+    # the gas a drained reservoir refills to (for a nonlinear law's first coefficient)
+    g_ref = np.maximum(g0, np.minimum(I * h_total, np.divide(I, loss, out=I * h_total,
+                                                             where=loss > 0)))
+    g_ref = np.where(g_ref > 0, g_ref, 1.0)
+    bondi = np.asarray(model.accretion.coefficient(rho_1 * g_ref, cs, 0.0), dtype=float) / g_ref
     edd = np.asarray(model.eddington.coefficient(eps), dtype=float)        # 1/Gyr
-    per_unit = 1.0 + np.asarray(model.feedback.gas_removed(np.ones(cbh.size), eps, ve),
-                                dtype=float)
-    # substeps per halo from its own fastest time-scale: black-hole e-folding, draining of
-    # the reservoir by accretion + feedback, and the reservoir's own loss to star formation
-    # and winds (where the hole competes with them for the inflow, the split step must
-    # resolve that competition). A drained reservoir refills from the inflow, so the rates
-    # are estimated with the gas it will hold: max(now, min(inflow x dt, inflow / loss rate)).
-    # Each halo's count depends on that halo only, so results never depend on which other
-    # halos share its snapshot or chunk.
-    loss = np.asarray(model.star_formation.loss_rate(td, vc), dtype=float)
-    g_est = np.maximum(g, np.minimum(I * h_total, np.divide(I, loss, out=I * h_total,
-                                                            where=loss > 0)))
-    rho, cs, _ = model.gas_zone.state(g_est, rv, tv)
-    A = np.asarray(model.accretion.coefficient(rho, cs, 0.0), dtype=float)
-    mdot = np.minimum(A * m_bh, edd) * m_bh
-    rate = (1 - eps) * mdot / m_bh + loss + np.divide(
-        mdot * per_unit, g_est, out=np.zeros(cbh.size), where=g_est > 0)
-    n_sub = np.clip(np.ceil(rate * h_total / run.substep_safety), 1, run.max_substeps)
-    h = h_total / n_sub
-    grown = np.zeros(cbh.size)
+    per_unit = 1.0 + np.asarray(model.feedback.gas_removed(np.ones(cbh.size), eps,
+                                                           v_esc[hl]), dtype=float)
+    coef = cp.Coefficients(inflow=I, loss=loss, lock=lock, metal_rate=metal_rate,
+                           bondi_per_gas=bondi, edd=edd, keep=1.0 - eps, per_unit=per_unit)
+    m_start = bh.mass[cbh]
+    n_sub = cp.substeps(g0, m_start, coef, h_total, run.substep_dlnm, run.max_substeps)
+
+    # halos sorted by substep count: substep j works on a leading slice (no gathers)
+    order = np.argsort(-n_sub, kind="stable")
+    n_sorted = n_sub[order]
+    coef = coef.take(order)
+    g, z, m = g0[order], metals[hrow][order], m_start[order]
+    h = h_total[order] / n_sorted
+    cs_o, rho_o = cs[order], rho_1[order]
     taken = np.zeros(cbh.size)
+    formed = np.zeros(cbh.size)
     out = np.zeros(cbh.size)
-    for j in range(int(n_sub.max())):
-        live = np.flatnonzero(n_sub > j)
-        res = model.star_formation.step(g[live], s[live], zm[live], I[live], td[live],
-                                        vc[live], h[live])
-        g[live], s[live], zm[live] = res.gas, res.stars, res.metals
-        out[live] += res.outflow_msun
-        rho, cs, _ = model.gas_zone.state(g[live], rv[live], tv[live])
-        A = np.asarray(model.accretion.coefficient(rho, cs, 0.0), dtype=float)
-        # accretion and the outflow it drives draw on the same reservoir within the
-        # substep: each Msun accreted removes `per_unit - 1` Msun more, so the black hole can
-        # take at most gas / per_unit (feedback self-regulates growth; King 2003)
-        m_new, accreted = acc.grow_frozen(m_bh[live], A, edd[live], eps[live], h[live],
-                                          g[live] / per_unit[live])
-        m_new = np.asarray(m_new, dtype=float)
-        accreted = np.asarray(accreted, dtype=float)
-        g0 = g[live]
-        gl = np.maximum(g0 - accreted, 0.0)
-        removed = np.minimum(accreted * (per_unit[live] - 1.0), gl)
-        g[live] = gl - removed
-        # gas leaving by accretion and outflow carries its metals (metallicity unchanged)
-        zm[live] *= np.divide(g[live], g0, out=np.zeros(live.size), where=g0 > 0)
-        out[live] += removed
-        grown[live] += m_new - m_bh[live]
-        taken[live] += accreted
-        m_bh[live] = m_new
-    bh.spin[cbh] = model.spin.update(bh.spin[cbh], m_start, m_bh, u)
+    n_live = np.searchsorted(-n_sorted, -np.arange(int(n_sorted[0]) if n_sorted.size else 0),
+                             side="left")          # halos still stepping at substep j
+    for j, nl in enumerate(n_live):
+        c = coef if nl == cbh.size else cp.Coefficients(*(a[:nl] for a in coef))
+        if not linear:
+            gr = np.where(g[:nl] > 0, g[:nl], 1.0)
+            c = c._replace(bondi_per_gas=np.asarray(model.accretion.coefficient(
+                rho_o[:nl] * gr, cs_o[:nl], 0.0), dtype=float) / gr)
+        r = cp.advance(g[:nl], z[:nl], m[:nl], c, h[:nl])
+        g[:nl], z[:nl], m[:nl] = r.gas, r.metals, r.m_bh
+        taken[:nl] += r.accreted
+        formed[:nl] += r.stars_formed
+        out[:nl] += r.wind + r.feedback
+    inv = np.empty_like(order)
+    inv[order] = np.arange(order.size)
+    g, z, m, taken, formed, out = (x[inv] for x in (g, z, m, taken, formed, out))
+    grown = m - m_start
+    bh.spin[cbh] = model.spin.update(bh.spin[cbh], m_start, m, u)
     bh.growth[cbh] += grown
-    bh.mass[cbh] = bh.mass[cbh] + grown
+    bh.mass[cbh] = m_start + grown
     bh.last_mdot[cbh] = np.divide(taken, h_total, out=np.zeros(cbh.size), where=h_total > 0)
-    gas[hrow], stars[hrow], metals[hrow] = g, s, zm
+    gas[hrow], metals[hrow] = g, z
+    stars[hrow] += formed
     outflow[hrow] += out
 
 

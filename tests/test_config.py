@@ -72,7 +72,7 @@ def test_unknown_section_and_channel(tmp_path):
 
 def test_out_of_range_names_allowed_range():
     with pytest.raises(BhgrowInputError) as err:
-        from_table({"run": {"substep_safety": 2.0}}, "x.toml")
+        from_table({"run": {"substep_dlnm": 2.0}}, "x.toml")
     assert "[run]" in str(err.value) and "(0, 1]" in str(err.value)
     with pytest.raises(BhgrowInputError, match="boost"):
         from_table({"accretion": {"bondi_hoyle": {"boost": -3.0}}}, "x.toml")

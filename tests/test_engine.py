@@ -142,7 +142,7 @@ def test_halving_the_substep_changes_results_by_under_half_a_percent(forest):
     # every tenth demo forest (the full set takes minutes at half the substep)
     sub = forest.select_forests(forest.forest_ids[::10])
     base = run_model(sub, from_table({"run": {"histories": False}}))
-    cfg = from_table({"run": {"substep_safety": 0.025, "max_substeps": 1024,
+    cfg = from_table({"run": {"substep_dlnm": 0.15, "max_substeps": 1024,
                               "histories": False}})
     fine = run_model(sub, cfg)
     tot_a, dec_a = _density_by_halo_decade(base.black_holes)

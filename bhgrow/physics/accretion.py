@@ -40,7 +40,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from typing import NamedTuple
+from typing import ClassVar, NamedTuple
 
 import numpy as np
 from scipy.special import xlogy
@@ -134,6 +134,9 @@ class BondiHoyle:
     """
 
     boost: float = DEFAULT_BONDI_BOOST
+    #: ``coefficient`` is proportional to ``rho`` (the engine then computes it once per
+    #: interval per unit gas)
+    linear_in_density: ClassVar[bool] = True
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "boost", _validate.positive(type(self).__name__, "boost",
@@ -203,6 +206,8 @@ class BoothSchaye:
     n_h_star_cm3: float = DEFAULT_BS09_N_H_STAR_CM3
     beta: float = DEFAULT_BS09_BETA
     hydrogen_fraction: float = DEFAULT_HYDROGEN_FRACTION
+    #: the boost depends on density: the engine re-evaluates the coefficient every substep
+    linear_in_density: ClassVar[bool] = False
 
     def __post_init__(self) -> None:
         owner = type(self).__name__

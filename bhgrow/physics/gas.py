@@ -433,6 +433,22 @@ class StarFormation:
         eta = self.mass_loading(v_c)
         return (1.0 - self.recycle + eta) * self.efficiency / np.asarray(t_dyn, dtype=np.float64)
 
+    def rates(self, t_dyn, v_c):
+        """Per-unit-gas rates of the reservoir equations, 1/Gyr (float64 arrays).
+
+        Returns
+        -------
+        (numpy.ndarray, numpy.ndarray, numpy.ndarray)
+            ``a = (1 - R + eta) eps_* / t_dyn`` (total loss to stars and winds),
+            ``(1 - R) eps_* / t_dyn`` (locked into long-lived stars) and
+            ``y (1 - R) eps_* / t_dyn`` (new metals), as in :meth:`step`.
+        """
+        s = self.efficiency / np.asarray(t_dyn, dtype=np.float64)
+        eta = self.mass_loading(v_c)
+        lock = (1.0 - self.recycle) * s
+        # a = (1 - R + eta) eps / t_dyn (Tinsley 1980; Cole et al. 2000)
+        return lock + eta * s, lock, self.metal_yield * lock
+
     def step(self, gas, stars, metals, inflow_rate, t_dyn, v_c, dt) -> GasStep:
         """Advance gas, stars and metals over ``dt`` with constant inflow, exactly.
 

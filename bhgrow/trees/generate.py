@@ -80,6 +80,7 @@ import numpy as np
 from scipy.special import hyp2f1
 
 from .. import _validate
+from .._grid import UniformLinearTable
 from ..rng import hash64 as _hash
 from ..rng import stream_keys as _root_keys
 from ..rng import uniform as _uniform
@@ -178,41 +179,8 @@ def j_integral(u, gamma1: float) -> np.ndarray:
     lnu_t, val_t = _j_table(float(gamma1))
     u = np.asarray(u, dtype=np.float64)
     lnu = np.log(u.reshape(-1))
-    tab = _UniformTable(-_J_K, _J_SCALE, val_t)
+    tab = UniformLinearTable(-_J_K, _J_SCALE, val_t)
     return np.exp(lnu + tab.value(0, *tab.locate(lnu))).reshape(u.shape)
-
-
-class _UniformTable:
-    """Piecewise-linear interpolation of tabulated columns on the lattice x_k = k / scale.
-
-    Nodes ``k = k_lo .. k_lo + n - 1``. Index arithmetic instead of a binary search
-    (``np.interp``); x outside the grid is clamped onto the end nodes. For x * scale >= 1
-    and a power-of-two scale the index and fraction are exact, so a value does not depend on
-    where the table starts or ends.
-    """
-
-    def __init__(self, k_lo: int, scale: float, *columns: np.ndarray):
-        self.k_lo = float(k_lo)
-        self.scale = float(scale)
-        self.last = columns[0].size - 2  # last interval
-        self.k_top = self.k_lo + self.last + 1.0
-        self.cols = [np.ascontiguousarray(c, dtype=np.float64) for c in columns]
-        self.slopes = [np.diff(c) for c in self.cols]
-
-    def locate(self, x: np.ndarray):
-        t = np.multiply(x, self.scale)
-        np.clip(t, self.k_lo, self.k_top, out=t)
-        k = np.floor(t)
-        np.minimum(k, self.k_top - 1.0, out=k)
-        t -= k
-        k -= self.k_lo
-        return k.astype(np.intp), t
-
-    def value(self, c: int, i: np.ndarray, t: np.ndarray) -> np.ndarray:
-        out = self.slopes[c][i]
-        out *= t
-        out += self.cols[c][i]
-        return out
 
 
 class _SigmaTable:
@@ -240,7 +208,7 @@ class _SigmaTable:
             raise BhgrowInputError(f"{_OWNER}: sigma(M) must decrease with mass between "
                                    f"{m_lo:.3g} and {m_hi:.3g} Msun", source=_OWNER,
                                    rule="sigma")
-        self.grid = _UniformTable(k_lo, _TABLE_PER_EFOLD, np.log(sig), alpha)
+        self.grid = UniformLinearTable(k_lo, _TABLE_PER_EFOLD, np.log(sig), alpha)
 
     def lnsigma(self, lnm: np.ndarray) -> np.ndarray:
         i, t = self.grid.locate(lnm)
@@ -555,7 +523,7 @@ class PCHTreeGenerator:
         ln_res = math.log(m_res)
         s_res2 = float(np.exp(2.0 * table.lnsigma(np.array([ln_res]))[0]))
         lnu_t, jv_t = _j_table(self.gamma1)
-        jtab = _UniformTable(-_J_K, _J_SCALE, jv_t)
+        jtab = UniformLinearTable(-_J_K, _J_SCALE, jv_t)
         g1, g2 = self.gamma1, self.gamma2
         f_coef = _SQRT_2_OVER_PI * self.g0
 

@@ -92,6 +92,7 @@ from scipy.interpolate import CubicSpline
 from scipy.signal import fftconvolve
 
 from .. import _validate
+from .._grid import UniformCubicSpline
 from ..cosmology import Cosmology
 from ..errors import BhgrowInputError, ParameterError
 
@@ -139,59 +140,15 @@ _OWNER = "LinearPower"
 # ------------------------------------------------------------------------------------------
 # Interpolation helpers
 # ------------------------------------------------------------------------------------------
-class _GridSpline:
-    """Cubic spline on a uniform grid, evaluated by index arithmetic and Horner's rule.
-
-    Coefficients are scipy ``CubicSpline``'s (not-a-knot); evaluation needs no search.
-    """
-
-    __slots__ = ("x0", "h", "inv_h", "last", "c0", "c1", "c2", "c3", "x_nodes", "y_nodes")
-
-    def __init__(self, x0: float, h: float, y: np.ndarray):
-        knots = x0 + h * np.arange(y.size)
-        coef = CubicSpline(knots, y).c  # (4, n-1), highest power first
-        self.x0 = float(x0)
-        self.h = float(h)
-        self.inv_h = 1.0 / self.h
-        self.last = coef.shape[1] - 1
-        self.c0, self.c1, self.c2, self.c3 = (np.ascontiguousarray(r) for r in coef)
-        self.x_nodes = knots
-        self.y_nodes = np.asarray(y, dtype=np.float64)
-
-    def _locate(self, x: np.ndarray):
-        d = (x - self.x0) * self.inv_h
-        i = d.astype(np.intp)
-        np.clip(i, 0, self.last, out=i)
-        d -= i
-        d *= self.h
-        return i, d
-
-    def __call__(self, x: np.ndarray) -> np.ndarray:
-        i, d = self._locate(x)
-        r = np.take(self.c0, i, mode="clip")  # i is already in range; "clip" skips checks
-        tmp = np.empty_like(r)
-        r *= d
-        r += np.take(self.c1, i, out=tmp, mode="clip")
-        r *= d
-        r += np.take(self.c2, i, out=tmp, mode="clip")
-        r *= d
-        r += np.take(self.c3, i, out=tmp, mode="clip")
-        return r
-
-    def value_and_slope(self, x: np.ndarray):
-        i, d = self._locate(x)
-        a, b, c = (np.take(cf, i, mode="clip") for cf in (self.c0, self.c1, self.c2))
-        slope = (3.0 * a * d + 2.0 * b) * d + c
-        value = ((a * d + b) * d + c) * d + np.take(self.c3, i, mode="clip")
-        return value, slope
-
-
 class _Inverse:
-    """Inverse of a strictly monotonic :class:`_GridSpline` on a uniform grid of its values."""
+    """Inverse of a strictly monotonic :class:`~bhgrow._grid.UniformCubicSpline`.
+
+    Itself a spline on a uniform grid of the forward values, plus one Newton step.
+    """
 
     __slots__ = ("fwd", "inv", "y_lo", "y_hi")
 
-    def __init__(self, fwd: _GridSpline, x_lo: float, x_hi: float):
+    def __init__(self, fwd: UniformCubicSpline, x_lo: float, x_hi: float):
         self.fwd = fwd
         ya, yb = (float(v) for v in fwd(np.array([x_lo, x_hi])))
         self.y_lo, self.y_hi = min(ya, yb), max(ya, yb)
@@ -204,7 +161,7 @@ class _Inverse:
         for _ in range(3):  # Newton polish on the forward spline
             val, slope = fwd.value_and_slope(x)
             x = x - (val - y) / slope
-        self.inv = _GridSpline(float(y[0]), hy, x)
+        self.inv = UniformCubicSpline(float(y[0]), hy, x)
 
     def __call__(self, y: np.ndarray) -> np.ndarray:
         x = self.inv(y)
@@ -696,8 +653,8 @@ class LinearPower:
         slope = dsig2 / sig2 / 6.0
         tab = _SigmaTables()
         tab.amplitude = self._amplitude()
-        tab.ln_sigma = _GridSpline(float(lnm[0]), h_m, 0.5 * np.log(sig2))
-        tab.slope = _GridSpline(float(lnm[0]), h_m, slope)
+        tab.ln_sigma = UniformCubicSpline(float(lnm[0]), h_m, 0.5 * np.log(sig2))
+        tab.slope = UniformCubicSpline(float(lnm[0]), h_m, slope)
         tab.lnm_lo, tab.lnm_hi = lnm_lo, lnm_hi
         tab.inverse = _Inverse(tab.ln_sigma, lnm_lo, lnm_hi)
         tab.sigma_lo = math.exp(tab.inverse.y_lo)  # sigma(m_max)
@@ -793,9 +750,9 @@ class LinearPower:
         tab = _GrowthTables()
         tab.x_max = x_max
         x0 = float(x[0])
-        tab.ln_d = _GridSpline(x0, _GROWTH_STEP, ln_d)
+        tab.ln_d = UniformCubicSpline(x0, _GROWTH_STEP, ln_d)
         # delta_c(z) = delta_crit(z) / D(z) (Lacey & Cole 1993)
-        tab.ln_dc = _GridSpline(x0, _GROWTH_STEP, np.log(dcrit) - ln_d)
+        tab.ln_dc = UniformCubicSpline(x0, _GROWTH_STEP, np.log(dcrit) - ln_d)
         tab.inverse = _Inverse(tab.ln_dc, 0.0, x_max)
         tab.dc_lo = math.exp(tab.inverse.y_lo)
         tab.dc_hi = math.exp(tab.inverse.y_hi)
