@@ -39,7 +39,7 @@ from .tables import Binning
 DEFAULT_SEED = 1                 # run seed: all random draws are keyed by (seed, object id)
 DEFAULT_COSMOLOGY = "Planck18"   # astropy realization (Planck Collaboration 2020, A&A 641, A6)
 DEFAULT_MAX_SUBSTEPS = 256       # cap on gas-hole substeps per snapshot interval
-DEFAULT_SUBSTEP_DLNM = 0.3       # largest growth of ln(M_BH) per substep (only Bondi phases
+DEFAULT_SUBSTEP_DLNM = 0.5       # largest growth of ln(M_BH) per substep (only Bondi phases
                                  # approximate; bhgrow/physics/coupled.py): final BH masses
                                  # within 0.5% of a solve_ivp reference (tests)
 DEFAULT_CHUNK_NODES = 2_000_000  # whole forests per engine chunk (bounds memory)

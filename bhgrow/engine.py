@@ -298,8 +298,8 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
         # baryon cap on the receiving descendants: gas above f_b M_desc is stripped (applied
         # at every arrival, so a descendant fed from several snapshots is capped each time)
         if ud.size:
-            bh_in = np.bincount(bh.host[moved], weights=bh.mass[moved], minlength=n)[ud] \
-                if moved.size else 0.0
+            bh_in = np.bincount(bh.host[moved] - lo, weights=bh.mass[moved],
+                                minlength=span)[ud - lo] if moved.size else 0.0
             excess = gas[ud] + stars[ud] + bh_in - fb * mass_h[ud]
             cut = np.clip(excess, 0.0, gas[ud])
             metals[ud] *= np.divide(gas[ud] - cut, gas[ud], out=np.zeros(ud.size),
@@ -415,9 +415,11 @@ def _move_black_holes(bh: BlackHoles, in_slice, desc, forest: Forest, k: int,
     from_main = forest.main_prog[new] == old
     cen = bh.status[moving] == CENTRAL
     demote = cen & ~from_main                    # centrals of other progenitors wander ...
-    gets_central = np.zeros(forest.n_nodes, dtype=bool)
-    gets_central[new[cen & from_main]] = True
-    cand = np.flatnonzero(demote & ~gets_central[new])
+    lo = int(new.min())                          # descendants' row range (no O(n) arrays)
+    span = int(new.max()) - lo + 1
+    gets_central = np.zeros(span, dtype=bool)
+    gets_central[new[cen & from_main] - lo] = True
+    cand = np.flatnonzero(demote & ~gets_central[new - lo])
     promote = np.zeros(moving.size, dtype=bool)  # ... unless the descendant has no central
     if cand.size:
         order = np.lexsort((bh.bh_id[moving[cand]], -bh.mass[moving[cand]], new[cand]))
@@ -426,11 +428,11 @@ def _move_black_holes(bh: BlackHoles, in_slice, desc, forest: Forest, k: int,
         promote[c_sorted[first]] = True
     sink = demote & ~promote
     # partner of each new satellite black hole: the central the descendant receives
-    partner = np.zeros(forest.n_nodes)
+    partner = np.zeros(span)
     stay = cen & (from_main | promote)
-    partner[new[stay]] = bh.mass[moving[stay]]
+    partner[new[stay] - lo] = bh.mass[moving[stay]]
     pairs.start_clocks(bh, moving[sink], new[sink], old[sink], t_node[new[sink]], model, run,
-                       cosmo, mass_h, z_node[new[sink]], partner[new[sink]], k)
+                       cosmo, mass_h, z_node[new[sink]], partner[new[sink] - lo], k)
     bh.status[moving[sink]] = SINKING
     bh.last_mdot[moving[sink]] = 0.0        # sinking black holes do not accrete
     bh.host[moving] = new

@@ -300,7 +300,7 @@ def _decay_integrals(x: np.ndarray):
     e = np.exp(-x)
     small = x < _X_SERIES
     with np.errstate(divide="ignore", invalid="ignore"):
-        em1 = -np.expm1(-x)          # 1 - e^-x without cancellation
+        em1 = 1.0 - e                # cancellation <~1e-14 above the series range
         phi1 = em1 / x
         phi2 = (x - em1) / (x * x)
         psi = (em1 - x * e) / (x * x)

@@ -229,6 +229,24 @@ def _draw_uniform(inp: SeedingInputs, purpose: str) -> np.ndarray:
     return rng.uniform(np.asarray(inp.keys, dtype=np.uint64), 0, SEEDING_PURPOSES[purpose])
 
 
+def _subset(inp: SeedingInputs, idx: np.ndarray) -> SeedingInputs:
+    """The inputs of the haloes ``idx`` (scalars stay scalars)."""
+    n = _n_halos(inp)
+    return SeedingInputs(*(np.asarray(a)[idx] if np.ndim(a) and np.shape(a)[0] == n else a
+                           for a in inp))
+
+
+def _masses_where(mask: np.ndarray, mass: "SeedMass", inp: SeedingInputs, purpose: str):
+    """``(mask, seed mass where mask else 0)``; draws are made only where ``mask`` (each
+    halo's draw depends on its own key alone, so the result is the same)."""
+    out = np.zeros(mask.shape)
+    idx = np.flatnonzero(mask)
+    if idx.size:
+        keys = np.asarray(inp.keys, dtype=np.uint64)[idx]
+        out[idx] = mass.draw(rng.uniform(keys, 0, SEEDING_PURPOSES[purpose]))
+    return mask, out
+
+
 _KINDS = ("fixed", "log_uniform", "log_normal")
 _KIND_FIELDS = {"fixed": ("value",), "log_uniform": ("lo", "hi"),
                 "log_normal": ("median", "sigma_dex")}
@@ -394,8 +412,7 @@ class LightSeeds:
                 & (_f64(inp.metallicity, n) < self.z_crit)
                 & (tv >= self.t_vir_min_k) & (tv < self.t_vir_max_k)
                 & (_f64(inp.z, n) >= self.z_min))
-        m = self.mass.draw(_draw_uniform(inp, "light.mass"))
-        return mask, np.where(mask, m, 0.0)
+        return _masses_where(mask, self.mass, inp, "light.mass")
 
 
 def j_lw_background(z, log10_z0=DEFAULT_J_BG_LOG10_Z0, dex_per_z=DEFAULT_J_BG_DEX_PER_Z):
@@ -508,10 +525,13 @@ class HeavySeeds:
         mask = (~_bool(inp.has_bh, n) & _bool(inp.pristine, n)
                 & (_f64(inp.metallicity, n) < self.z_crit)
                 & (_f64(inp.t_vir_k, n) >= self.t_vir_min_k)
-                & (_f64(inp.z, n) >= self.z_min)
-                & (self.j_lw(inp) > self.j_crit(inp)))
-        m = self.mass.draw(_draw_uniform(inp, "heavy.mass"))
-        return mask, np.where(mask, m, 0.0)
+                & (_f64(inp.z, n) >= self.z_min))
+        # the flux test only where the rest holds (per-halo draws: same result)
+        idx = np.flatnonzero(mask)
+        if idx.size:
+            sub = _subset(inp, idx)
+            mask[idx] = self.j_lw(sub) > self.j_crit(sub)
+        return _masses_where(mask, self.mass, inp, "heavy.mass")
 
 
 @dataclass(frozen=True)
@@ -553,8 +573,7 @@ class HaloMassSeeds:
         n = _n_halos(inp)
         # M_h >= M_thr, no BH yet (Vogelsberger et al. 2013, MNRAS 436, 3031; Sijacki et al. 2015)
         mask = ~_bool(inp.has_bh, n) & (_f64(inp.m_halo_msun, n) >= self.m_halo_min_msun)
-        m = self.mass.draw(_draw_uniform(inp, "halo_mass.mass"))
-        return mask, np.where(mask, m, 0.0)
+        return _masses_where(mask, self.mass, inp, "halo_mass.mass")
 
 
 @dataclass(frozen=True)
@@ -607,8 +626,7 @@ class DenseGasSeeds:
                 & (_f64(inp.n_h_cm3, n) > self.n_h_min_cm3)
                 & (_f64(inp.metallicity, n) < self.z_max)
                 & (_f64(inp.t_vir_k, n) < self.t_vir_max_k))
-        m = self.mass.draw(_draw_uniform(inp, "dense_gas.mass"))
-        return mask, np.where(mask, m, 0.0)
+        return _masses_where(mask, self.mass, inp, "dense_gas.mass")
 
 
 #: config name -> channel class
