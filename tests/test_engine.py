@@ -138,24 +138,24 @@ def _density_by_halo_decade(t):
     return np.sum(w * m), {d: np.sum((w * m)[dec == d]) for d in np.unique(dec)}
 
 
-def test_halving_the_substep_changes_results_by_under_half_a_percent(forest):
-    # every tenth demo forest (the full set takes minutes at half the substep)
-    sub = forest.select_forests(forest.forest_ids[::10])
+def test_halving_the_substep_changes_results_by_under_a_permille(forest):
+    # every fifth demo forest, default substep_dlnm against a four times finer one
+    # (convergence of the coupled solver: a closed-form check of consistency, not of physics)
+    sub = forest.select_forests(forest.forest_ids[::5])
     base = run_model(sub, from_table({"run": {"histories": False}}))
-    cfg = from_table({"run": {"substep_dlnm": 0.15, "max_substeps": 1024,
+    dlnm = from_table({}).run.substep_dlnm
+    cfg = from_table({"run": {"substep_dlnm": dlnm / 4, "max_substeps": 1024,
                               "histories": False}})
     fine = run_model(sub, cfg)
     tot_a, dec_a = _density_by_halo_decade(base.black_holes)
     tot_b, dec_b = _density_by_halo_decade(fine.black_holes)
     # the headline number: comoving black-hole mass density
-    assert abs(tot_b / tot_a - 1) < 5e-3
-    # and its split over host-halo mass: every decade holding > 10% of it (decades whose
-    # black holes barely grew from their seeds, a few per cent of the density, converge
-    # more slowly: ~1-4% per halving)
-    checked = [d for d in dec_a if dec_a[d] / tot_a > 0.1]
+    assert abs(tot_b / tot_a - 1) < 1e-3
+    # and its split over host-halo mass: every decade holding > 5% of it
+    checked = [d for d in dec_a if dec_a[d] / tot_a > 0.05]
     assert len(checked) >= 2
     for d in checked:
-        assert abs(dec_b[d] / dec_a[d] - 1) < 5e-3, d
+        assert abs(dec_b[d] / dec_a[d] - 1) < 1e-3, d
 
 
 @settings(max_examples=8, deadline=None)

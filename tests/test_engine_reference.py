@@ -53,6 +53,8 @@ Z_SNAP[-1] = 0.0
 HALOS = ((1e11, 0.60), (1e12, 0.75), (1e13, 0.90))
 SEED_MSUN = 1e5
 RTOL_ISSUE = 5e-3   # required agreement of the final black-hole mass (issue)
+# what the coupled closed-form solver achieves at the default substep (measured ~1e-4)
+RTOL_ENGINE = 1e-3
 
 
 def _mass_histories() -> np.ndarray:
@@ -202,3 +204,4 @@ def test_final_black_hole_mass_matches_reference(compared):
     detail = ", ".join(f"M0={m0:.0e}: engine {me:.4e} ref {mr:.4e} ({d:+.2%})"
                        for (m0, _), me, mr, d in zip(HALOS, m_engine, m_ref, rel))
     assert np.all(np.abs(rel) < RTOL_ISSUE), f"feedback={mode}: {detail}"
+    assert np.all(np.abs(rel) < RTOL_ENGINE), f"feedback={mode}: {detail}"

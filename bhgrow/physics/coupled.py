@@ -368,11 +368,19 @@ def _advance(gas, metals, m_bh, c: Coefficients, dt) -> IntervalResult:
                 if j.size:
                     cj = cb.take(j)
                     tb[j] = _bondi_runaway(gb0[j], mb0[j], cj, tb[j], mb0[j])
-                    _, gib[j], _, _ = _bondi_phase(gb0[j], mb0[j], cj, tb[j], mb0[j])
+                    gb[j], gib[j], _, _ = _bondi_phase(gb0[j], mb0[j], cj, tb[j], mb0[j])
             mbar = _mean_mass(mb0, cb, gib, tb)
-            _, gib, _, _ = _bondi_phase(gb0, mb0, cb, tb, mbar)                # corrector
-            mbar = _mean_mass(mb0, cb, gib, tb)
-            gb, gib, accb, lam = _bondi_phase(gb0, mb0, cb, tb, mbar)
+            # corrector, where the hole's drain on the gas changes by more than 1e-10 over
+            # the phase (elsewhere the predictor's gas is already exact to that level)
+            s = np.flatnonzero(cb.per_unit * cb.bondi_per_gas * (mbar * mbar - mb0 * mb0) * tb
+                               > 1e-10)
+            if s.size:
+                cs, gs0, ms0, ts = cb.take(s), gb0[s], mb0[s], tb[s]
+                _, gis, _, _ = _bondi_phase(gs0, ms0, cs, ts, mbar[s])
+                mbar[s] = _mean_mass(ms0, cs, gis, ts)
+                gb[s], gib[s], _, _ = _bondi_phase(gs0, ms0, cs, ts, mbar[s])
+            accb = cb.bondi_per_gas * mbar * mbar * gib
+            lam = cb.loss + cb.per_unit * cb.bondi_per_gas * mbar * mbar
             if last:
                 # no more switches: never above the Eddington-limited growth; gas not
                 # taken stays in the reservoir
