@@ -70,6 +70,8 @@ _SERIES_X = 0.05
 #: a reservoir feeding at least (1 - _EDD_TOL) of the Eddington rate counts as Eddington-fed:
 #: the phase switches, which are found by root finding, then land on the right side
 _EDD_TOL = 1e-3
+#: rise of the hole's share of the reservoir's loss rate per step, per unit max_dlnm
+_DRAIN_SHARE = 0.1
 
 
 class Coefficients(NamedTuple):
@@ -455,7 +457,14 @@ def _substeps(gas, m_bh, c: Coefficients, dt, max_dlnm: float, cap: int) -> np.n
     q = k * c.bondi_per_gas * g_hi * m_bh * dt
     by_bondi = -np.log(np.clip(1.0 - q, 1e-300, 1.0))
     dlnm = np.minimum(np.minimum(ke, by_gas), by_bondi)
-    n = np.clip(np.ceil(dlnm / max_dlnm), 1, cap)
+    # where the hole's drain takes over the reservoir within the step (its share
+    # phi = P B M^2 / (a + P B M^2) of the gas loss rises), the frozen-mass drain is least
+    # accurate: bound the rise of phi per step too, at _DRAIN_SHARE x max_dlnm
+    pb = c.per_unit * c.bondi_per_gas * m_bh * m_bh
+    grow2 = np.exp(np.minimum(2.0 * dlnm, 700.0))
+    dphi = pb * grow2 / (c.loss + pb * grow2) - pb / (c.loss + pb)
+    dphi = np.where(np.isfinite(dphi), dphi, 1.0)
+    n = np.clip(np.ceil(np.maximum(dlnm / max_dlnm, dphi / (_DRAIN_SHARE * max_dlnm))), 1, cap)
     # Eddington-fed over the whole interval: one exact phase
     g1, m1, _ = _eddington_state(gas, m_bh, c, dt)
     fed = (_log_ratio(c, gas, m_bh) >= 0.0) & (_log_ratio(c, g1, m1) >= -_EDD_TOL)
