@@ -220,33 +220,38 @@ def _bondi_switch_time(g0, c: Coefficients, mbar, t):
     return np.where(rises | lin, np.clip(ts, 0.0, t), t)
 
 
-def _newton(fdf, lo, hi, f_lo, f_hi):
+def _newton(fdf, lo, hi):
     """Root of a decreasing ``f`` bracketed by ``f(lo) >= 0 > f(hi)`` (vectorized).
 
     ``fdf(s)`` returns ``(f, f', band)``; a point with ``0 <= f <= band`` is accepted.
-    Safeguarded Newton: start from the secant, keep the bracket, and where a Newton step
-    leaves it, halve the distance to the nearer end of the bracket (so a root very close
-    to an end is reached geometrically, then quadratically). At most :data:`_ROOT_ITERS`
-    iterations; stops when every point is accepted. Returns accepted points, else the
-    last point known to have ``f >= 0``.
+    Safeguarded Newton from the ``lo`` end (the switch functions here are convex near a
+    fast reservoir's transient, where Newton from ``lo`` cannot overshoot); a step that
+    leaves the bracket is replaced by the secant of the bracket. At most
+    :data:`_ROOT_ITERS` iterations; each accepted point stays put, so each root depends on
+    its own halo only (results must not depend on which halos share a chunk). Returns the
+    accepted points, else the last point known to have ``f >= 0``.
     """
+    f_lo, df_lo, _ = fdf(lo)
+    f_hi = fdf(hi)[0]
+    nxt = lo - f_lo / df_lo
     w = f_lo / (f_lo - f_hi)
-    s = lo + np.clip(np.where(np.isfinite(w), w, 0.5), 0.05, 0.95) * (hi - lo)
+    sec = lo + np.clip(np.where(np.isfinite(w), w, 0.5), 1e-6, 1.0 - 1e-6) * (hi - lo)
+    s = np.where((nxt > lo) & (nxt < hi), nxt, sec)
     done = np.zeros(s.shape, dtype=bool)
     for _ in range(_ROOT_ITERS):
         f, df, band = fdf(s)
         up = f >= 0.0
-        # an accepted point stays put, so each root depends on its own halo only (results
-        # must not depend on which halos share a chunk)
         done |= up & (f <= band)
         if done.all():
             return s
         lo = np.where(up, s, lo)
+        f_lo = np.where(up, f, f_lo)
         hi = np.where(up, hi, s)
+        f_hi = np.where(up, f_hi, f)
         nxt = s - f / df
-        inside = (nxt > lo) & (nxt < hi)
-        s = np.where(done, s, np.where(inside, nxt,
-                                       np.where(up, 0.5 * (s + hi), 0.5 * (lo + s))))
+        w = f_lo / (f_lo - f_hi)
+        sec = lo + np.clip(np.where(np.isfinite(w), w, 0.5), 0.01, 0.99) * (hi - lo)
+        s = np.where(done, s, np.where((nxt > lo) & (nxt < hi), nxt, sec))
     return np.where(done, s, lo)
 
 
@@ -268,7 +273,7 @@ def _eddington_end(g0, m0, c: Coefficients, t):
         # rate is within [1 - tol, 1] of Eddington
         return (g - gs, c.inflow - c.loss * g - c.per_unit * c.edd * m + b * gs,
                 _EDD_TOL / (1.0 - _EDD_TOL) * gs)
-    return _newton(fdf, np.zeros_like(t), t.copy(), fdf(np.zeros_like(t))[0], fdf(t)[0])
+    return _newton(fdf, np.zeros_like(t), t.copy())
 
 
 def _bondi_mass(m0, c: Coefficients, gas_integral):
@@ -300,7 +305,7 @@ def _bondi_runaway(g0, m0, c: Coefficients, t, mbar):
         # accepted where the rate is within [1, 1 + tol] of Eddington
         return (e_b * inv_m - g, -e_b * c.keep * c.bondi_per_gas * g - (c.inflow - lam * g),
                 _EDD_TOL / (1.0 + _EDD_TOL) * e_b * inv_m)
-    return _newton(fdf, np.zeros_like(t), t.copy(), fdf(np.zeros_like(t))[0], fdf(t)[0])
+    return _newton(fdf, np.zeros_like(t), t.copy())
 
 
 def advance(gas, metals, m_bh, c: Coefficients, dt) -> IntervalResult:
