@@ -358,32 +358,25 @@ def _grow(model, run, bh, cbh, rows, sl, active, gas, stars, metals, outflow, in
     m_start = bh.mass[cbh]
     n_sub = cp.substeps(g0, m_start, coef, h_total, run.substep_dlnm, run.max_substeps)
 
-    # halos sorted by substep count: substep j works on a leading slice (no gathers)
-    order = np.argsort(-n_sub, kind="stable")
-    n_sorted = n_sub[order]
-    coef = coef.take(order)
-    g, z, m = g0[order], metals[hrow][order], m_start[order]
-    h = h_total[order] / n_sorted
-    cs_o, rho_o = cs[order], rho_1[order]
-    taken = np.zeros(cbh.size)
-    formed = np.zeros(cbh.size)
-    out = np.zeros(cbh.size)
-    n_live = np.searchsorted(-n_sorted, -np.arange(int(n_sorted[0]) if n_sorted.size else 0),
-                             side="left")          # halos still stepping at substep j
-    for j, nl in enumerate(n_live):
-        c = coef if nl == cbh.size else cp.Coefficients(*(a[:nl] for a in coef))
-        if not linear:
-            gr = np.where(g[:nl] > 0, g[:nl], 1.0)
-            c = c._replace(bondi_per_gas=np.asarray(model.accretion.coefficient(
-                rho_o[:nl] * gr, cs_o[:nl], 0.0), dtype=float) / gr)
-        r = cp.advance(g[:nl], z[:nl], m[:nl], c, h[:nl])
-        g[:nl], z[:nl], m[:nl] = r.gas, r.metals, r.m_bh
-        taken[:nl] += r.accreted
-        formed[:nl] += r.stars_formed
-        out[:nl] += r.wind + r.feedback
-    inv = np.empty_like(order)
-    inv[order] = np.arange(order.size)
-    g, z, m, taken, formed, out = (x[inv] for x in (g, z, m, taken, formed, out))
+    if linear:
+        r = cp.advance(g0, metals[hrow], m_start, coef, h_total, n_sub)
+        g, z, m, taken, formed = r.gas, r.metals, r.m_bh, r.accreted, r.stars_formed
+        out = r.wind + r.feedback
+    else:
+        # the coefficient depends on the gas: re-evaluated at every step's start
+        g, z, m = g0.copy(), metals[hrow].copy(), m_start.copy()
+        taken, formed, out = np.zeros(cbh.size), np.zeros(cbh.size), np.zeros(cbh.size)
+        h = h_total / n_sub
+        for j in range(int(n_sub.max()) if n_sub.size else 0):
+            live = np.flatnonzero(n_sub > j)
+            gr = np.where(g[live] > 0, g[live], 1.0)
+            c = coef.take(live)._replace(bondi_per_gas=np.asarray(model.accretion.coefficient(
+                rho_1[live] * gr, cs[live], 0.0), dtype=float) / gr)
+            r = cp.advance(g[live], z[live], m[live], c, h[live])
+            g[live], z[live], m[live] = r.gas, r.metals, r.m_bh
+            taken[live] += r.accreted
+            formed[live] += r.stars_formed
+            out[live] += r.wind + r.feedback
     grown = m - m_start
     bh.spin[cbh] = model.spin.update(bh.spin[cbh], m_start, m, u)
     bh.growth[cbh] += grown

@@ -59,9 +59,8 @@ import numpy as np
 
 __all__ = ["Coefficients", "IntervalResult", "advance", "substeps"]
 
-#: phases per substep before the remaining time is taken in the current phase regardless of
-#: further switches (a substep rarely needs more than two: Eddington -> Bondi, or
-#: Bondi -> Eddington)
+#: phases per halo, beyond two per Bondi step, before the remaining time is taken in one
+#: Bondi phase regardless of further switches (capped at Eddington-limited growth)
 _MAX_PHASES = 6
 #: most safeguarded Newton iterations for a phase switch (usually 2-4 suffice; a switch
 #: very early in a step of a fast reservoir takes ~log2(dt / t_switch) more)
@@ -308,8 +307,8 @@ def _bondi_runaway(g0, m0, c: Coefficients, t, mbar):
     return _newton(fdf, np.zeros_like(t), t.copy())
 
 
-def advance(gas, metals, m_bh, c: Coefficients, dt) -> IntervalResult:
-    """Advance reservoir and black hole over one step ``dt`` (piecewise closed form).
+def advance(gas, metals, m_bh, c: Coefficients, dt, n_steps=None) -> IntervalResult:
+    """Advance reservoir and black hole over ``dt`` (piecewise closed form).
 
     Parameters
     ----------
@@ -322,7 +321,10 @@ def advance(gas, metals, m_bh, c: Coefficients, dt) -> IntervalResult:
     c : Coefficients
         Fixed coefficients of each halo.
     dt : numpy.ndarray
-        Step length, Gyr (>= 0).
+        Interval length, Gyr (>= 0).
+    n_steps : numpy.ndarray, optional
+        Per halo: Bondi phases last at most ``dt / n_steps`` (:func:`substeps`; default 1).
+        Eddington phases are exact and are never cut.
 
     Returns
     -------
@@ -332,30 +334,35 @@ def advance(gas, metals, m_bh, c: Coefficients, dt) -> IntervalResult:
         by ``k accreted``; ``gas_end = gas + I dt - accreted - stars - wind - feedback``.
     """
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-        return _advance(gas, metals, m_bh, c, dt)
+        return _advance(gas, metals, m_bh, c, dt, n_steps)
 
 
-def _advance(gas, metals, m_bh, c: Coefficients, dt) -> IntervalResult:
+def _advance(gas, metals, m_bh, c: Coefficients, dt, n_steps) -> IntervalResult:
     g = np.array(gas, dtype=np.float64)
     z = np.array(metals, dtype=np.float64)
     m = np.array(m_bh, dtype=np.float64)
     left = np.array(dt, dtype=np.float64)
     n = g.size
+    steps = np.ones(n) if n_steps is None else np.asarray(n_steps, dtype=np.float64)
+    h_bondi = left / steps
+    # phases per halo before the rest is taken without further switches: the Bondi steps
+    # plus room for the switches (a phase rarely needs more than two per step)
+    limit = 2.0 * steps + _MAX_PHASES
+    count = np.zeros(n)
     acc = np.zeros(n)
     gint = np.zeros(n)
     todo = np.flatnonzero(left > 0)
-    for phase in range(_MAX_PHASES + 1):
-        if todo.size == 0:
-            break
-        last = phase == _MAX_PHASES
+    while todo.size:
         if todo.size == n:            # usually the first phase: no gathers
             ct, g0, z0, m0, t = c, g.copy(), z.copy(), m.copy(), left.copy()
+            hb, last = h_bondi, count >= limit
         else:
             ct = c.take(todo)
             g0, z0, m0, t = g[todo], z[todo], m[todo], left[todo]
+            hb, last = h_bondi[todo], count[todo] >= limit[todo]
         # the regime of each phase from its start; switches land inside the tolerance band
         # (a phase ending early just leaves the rest to the next phase)
-        edd = (_log_ratio(ct, g0, m0) >= 0.0) & (not last)
+        edd = (_log_ratio(ct, g0, m0) >= 0.0) & ~last
         g1, z1, m1, a1, gi1, used = (np.empty_like(g0) for _ in range(6))
 
         # --- Eddington phases: exact; end where the reservoir can no longer feed e M -------
@@ -390,19 +397,19 @@ def _advance(gas, metals, m_bh, c: Coefficients, dt) -> IntervalResult:
         ib = np.flatnonzero(~edd)
         if ib.size:
             cb = ct.take(ib)
-            gb0, mb0, tb = g0[ib], m0[ib], t[ib]
-            if not last:
-                # the gas, rising towards its equilibrium, lifts the rate to Eddington
-                tb = _bondi_switch_time(gb0, cb, mb0, tb)
+            gb0, mb0, lb = g0[ib], m0[ib], last[ib]
+            # at most one Bondi step; the last phase of a halo takes all that is left
+            tb = np.where(lb, t[ib], np.minimum(t[ib], hb[ib]))
+            # the gas, rising towards its equilibrium, lifts the rate to Eddington
+            tb = np.where(lb, tb, _bondi_switch_time(gb0, cb, mb0, tb))
             gb, gib, _, _ = _bondi_phase(gb0, mb0, cb, tb, mb0)                # predictor
-            if not last:
-                # the hole's own growth lifts the rate to Eddington within the phase
-                j = np.flatnonzero(_log_ratio(cb, gb, _bondi_mass(mb0, cb, gib))
-                                   > _EDD_TOL)
-                if j.size:
-                    cj = cb.take(j)
-                    tb[j] = _bondi_runaway(gb0[j], mb0[j], cj, tb[j], mb0[j])
-                    gb[j], gib[j], _, _ = _bondi_phase(gb0[j], mb0[j], cj, tb[j], mb0[j])
+            # the hole's own growth lifts the rate to Eddington within the phase
+            j = np.flatnonzero((_log_ratio(cb, gb, _bondi_mass(mb0, cb, gib)) > _EDD_TOL)
+                               & ~lb)
+            if j.size:
+                cj = cb.take(j)
+                tb[j] = _bondi_runaway(gb0[j], mb0[j], cj, tb[j], mb0[j])
+                gb[j], gib[j], _, _ = _bondi_phase(gb0[j], mb0[j], cj, tb[j], mb0[j])
             mbar = _mean_mass(mb0, cb, gib, tb)
             # corrector, where the hole's drain on the gas changes by more than 1e-10 over
             # the phase (elsewhere the predictor's gas is already exact to that level)
@@ -415,11 +422,11 @@ def _advance(gas, metals, m_bh, c: Coefficients, dt) -> IntervalResult:
                 gb[s], gib[s], _, _ = _bondi_phase(gs0, ms0, cs, ts, mbar[s])
             accb = cb.bondi_per_gas * mbar * mbar * gib
             lam = cb.loss + cb.per_unit * cb.bondi_per_gas * mbar * mbar
-            if last:
+            if lb.any():
                 # no more switches: never above the Eddington-limited growth; gas not
                 # taken stays in the reservoir
                 cap_b = mb0 * np.expm1(cb.keep * cb.edd * tb) / cb.keep
-                over = np.maximum(accb - cap_b, 0.0)
+                over = np.where(lb, np.maximum(accb - cap_b, 0.0), 0.0)
                 accb = accb - over
                 gb = gb + cb.per_unit * over
             z1[ib] = _metals(z0[ib], gb0, cb.inflow, lam, cb.metal_rate, tb)
@@ -429,7 +436,8 @@ def _advance(gas, metals, m_bh, c: Coefficients, dt) -> IntervalResult:
         acc[todo] += a1
         gint[todo] += gi1
         rest = t - used
-        left[todo] = np.where(rest > 1e-12 * t, rest, 0.0)
+        left[todo] = np.where((rest > 1e-12 * t) & ~last, rest, 0.0)
+        count[todo] += 1.0
         todo = todo[left[todo] > 0]
 
     stars = c.lock * gint
