@@ -172,8 +172,10 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
     stars = np.zeros(n)
     metals = np.zeros(n)
     polluted = np.zeros(n, dtype=bool)
-    stripped = np.zeros(n)     # gas removed at halo merging (baryon cap), per descendant
-    outflow = np.zeros(n)      # SN + AGN outflow over the node's interval
+    # totals of gas removed by the baryon cap at halo mergers and by SN + AGN outflows
+    # (one-element arrays, so _grow can add to them in place)
+    stripped = np.zeros(1)
+    outflow = np.zeros(1)
     node_keys = rng.stream_keys(run.seed, forest.node_id)
 
     bh = BlackHoles()
@@ -262,10 +264,11 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
         quiet = step_rows & ~has_central
         if quiet.any():
             q = np.flatnonzero(quiet)
-            res = model.star_formation.step(gas[sl][q], stars[sl][q], metals[sl][q],
-                                            inflow[q], t_dyn[q], v_c[q], dts[q])
-            gas[rows[q]], stars[rows[q]], metals[rows[q]] = res.gas, res.stars, res.metals
-            outflow[rows[q]] += res.outflow_msun
+            g_sl, s_sl, z_sl = gas[sl], stars[sl], metals[sl]      # views
+            res = model.star_formation.step(g_sl[q], s_sl[q], z_sl[q], inflow[q], t_dyn[q],
+                                            v_c[q], dts[q])
+            g_sl[q], s_sl[q], z_sl[q] = res.gas, res.stars, res.metals
+            outflow += res.outflow_msun.sum()
         active = step_rows & has_central
         cbh = np.flatnonzero(central)
         cbh = cbh[step_rows[bh.host[cbh] - sl.start]] if cbh.size else cbh
@@ -305,13 +308,13 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
             metals[ud] *= np.divide(gas[ud] - cut, gas[ud], out=np.zeros(ud.size),
                                     where=gas[ud] > 0)    # stripped gas takes its metals
             gas[ud] -= cut
-            stripped[ud] += cut
+            stripped += cut.sum()
 
     # --- end: ledger and baryon check ---------------------------------------------------------
     ledger = _ledger(bh, forest)
     baryon = _baryon_check(forest, gas, stars, bh, fb)
-    baryon["stripped_msun"] = float(stripped.sum())
-    baryon["outflow_msun"] = float(outflow.sum())
+    baryon["stripped_msun"] = float(stripped[0])
+    baryon["outflow_msun"] = float(outflow[0])
     mergers = {key: np.concatenate([e[key] for e in events]) for key in events[0]} \
         if events else {}
     return EngineResult(black_holes=bh, history=hist, forest=forest, ledger=ledger,
@@ -384,7 +387,7 @@ def _grow(model, run, bh, cbh, rows, sl, active, gas, stars, metals, outflow, in
     bh.last_mdot[cbh] = np.divide(taken, h_total, out=np.zeros(cbh.size), where=h_total > 0)
     gas[hrow], metals[hrow] = g, z
     stars[hrow] += formed
-    outflow[hrow] += out
+    outflow += out.sum()
 
 
 def _move_black_holes(bh: BlackHoles, in_slice, desc, forest: Forest, k: int,

@@ -222,27 +222,33 @@ def _bondi_switch_time(g0, c: Coefficients, mbar, t):
 def _newton(fdf, lo, hi):
     """Root of a decreasing ``f`` bracketed by ``f(lo) >= 0 > f(hi)`` (vectorized).
 
-    ``fdf(s)`` returns ``(f, f', band)``; a point with ``0 <= f <= band`` is accepted.
-    Safeguarded Newton from the ``lo`` end (the switch functions here are convex near a
-    fast reservoir's transient, where Newton from ``lo`` cannot overshoot); a step that
-    leaves the bracket is replaced by the secant of the bracket. At most
-    :data:`_ROOT_ITERS` iterations; each accepted point stays put, so each root depends on
-    its own halo only (results must not depend on which halos share a chunk). Returns the
-    accepted points, else the last point known to have ``f >= 0``.
+    ``fdf(s, i)`` returns ``(f, f', band)`` at ``s`` for the elements ``i`` (an index array,
+    or None for all); a point with ``0 <= f <= band`` is accepted. Safeguarded Newton from
+    the ``lo`` end (the switch functions here are convex near a fast reservoir's
+    transient, where Newton from ``lo`` cannot overshoot); a step that leaves the bracket
+    is replaced by the secant of the bracket. Accepted points stay put and leave the
+    iteration, so each root depends on its own halo only (results must not depend on which
+    halos share a chunk). At most :data:`_ROOT_ITERS` iterations. Returns the accepted
+    points, else the last point known to have ``f >= 0``.
     """
-    f_lo, df_lo, _ = fdf(lo)
-    f_hi = fdf(hi)[0]
+    f_lo, df_lo, _ = fdf(lo, None)
+    f_hi = fdf(hi, None)[0]
     nxt = lo - f_lo / df_lo
     w = f_lo / (f_lo - f_hi)
     sec = lo + np.clip(np.where(np.isfinite(w), w, 0.5), 1e-6, 1.0 - 1e-6) * (hi - lo)
     s = np.where((nxt > lo) & (nxt < hi), nxt, sec)
-    done = np.zeros(s.shape, dtype=bool)
+    out = lo.copy()
+    act = np.arange(s.size)                 # elements still iterating
     for _ in range(_ROOT_ITERS):
-        f, df, band = fdf(s)
+        f, df, band = fdf(s, act if act.size < out.size else None)
         up = f >= 0.0
-        done |= up & (f <= band)
-        if done.all():
-            return s
+        ok = up & (f <= band)
+        out[act[ok]] = s[ok]
+        keep = ~ok
+        if not keep.any():
+            return out
+        act, s, f, df, up = act[keep], s[keep], f[keep], df[keep], up[keep]
+        lo, hi, f_lo, f_hi = lo[keep], hi[keep], f_lo[keep], f_hi[keep]
         lo = np.where(up, s, lo)
         f_lo = np.where(up, f, f_lo)
         hi = np.where(up, hi, s)
@@ -250,8 +256,9 @@ def _newton(fdf, lo, hi):
         nxt = s - f / df
         w = f_lo / (f_lo - f_hi)
         sec = lo + np.clip(np.where(np.isfinite(w), w, 0.5), 0.01, 0.99) * (hi - lo)
-        s = np.where(done, s, np.where((nxt > lo) & (nxt < hi), nxt, sec))
-    return np.where(done, s, lo)
+        s = np.where((nxt > lo) & (nxt < hi), nxt, sec)
+    out[act] = lo
+    return out
 
 
 def _log_ratio(c: Coefficients, g, m):
@@ -265,12 +272,14 @@ def _eddington_end(g0, m0, c: Coefficients, t):
     star = (1.0 - _EDD_TOL) * c.edd / (c.bondi_per_gas * m0)   # g* at s = 0
     b = c.keep * c.edd
 
-    def fdf(s):
-        g, m, _ = _eddington_state(g0, m0, c, s)
-        gs = star * np.exp(-b * s)
+    def fdf(s, i):
+        gi0, mi0, ci, st, bi = ((g0, m0, c, star, b) if i is None else
+                                (g0[i], m0[i], c.take(i), star[i], b[i]))
+        g, m, _ = _eddington_state(gi0, mi0, ci, s)
+        gs = st * np.exp(-bi * s)
         # dg/dt = I - a g - P e M (Eddington phase); d g*/dt = -b g*; accepted where the
         # rate is within [1 - tol, 1] of Eddington
-        return (g - gs, c.inflow - c.loss * g - c.per_unit * c.edd * m + b * gs,
+        return (g - gs, ci.inflow - ci.loss * g - ci.per_unit * ci.edd * m + bi * gs,
                 _EDD_TOL / (1.0 - _EDD_TOL) * gs)
     return _newton(fdf, np.zeros_like(t), t.copy())
 
@@ -296,14 +305,16 @@ def _bondi_runaway(g0, m0, c: Coefficients, t, mbar):
     lam = c.loss + c.per_unit * c.bondi_per_gas * mbar * mbar
     e_b = (1.0 + _EDD_TOL) * c.edd / c.bondi_per_gas
 
-    def fdf(s):
-        g, gi, _, _ = _bondi_phase(g0, m0, c, s, mbar)
+    def fdf(s, i):
+        gi0, mi0, ci, mb, li, eb = ((g0, m0, c, mbar, lam, e_b) if i is None else
+                                    (g0[i], m0[i], c.take(i), mbar[i], lam[i], e_b[i]))
+        g, gi, _, _ = _bondi_phase(gi0, mi0, ci, s, mb)
         # g* = e / (B M) with 1/M = 1/M_0 - k B int g (Bondi 1952): linear in int g, so
         # (g* - g) is smooth; d/dt = -k e_b B g ... = -(1 + tol) k e g - (I - lam g)
-        inv_m = 1.0 / m0 - c.keep * c.bondi_per_gas * gi
+        inv_m = 1.0 / mi0 - ci.keep * ci.bondi_per_gas * gi
         # accepted where the rate is within [1, 1 + tol] of Eddington
-        return (e_b * inv_m - g, -e_b * c.keep * c.bondi_per_gas * g - (c.inflow - lam * g),
-                _EDD_TOL / (1.0 + _EDD_TOL) * e_b * inv_m)
+        return (eb * inv_m - g, -eb * ci.keep * ci.bondi_per_gas * g - (ci.inflow - li * g),
+                _EDD_TOL / (1.0 + _EDD_TOL) * eb * inv_m)
     return _newton(fdf, np.zeros_like(t), t.copy())
 
 
