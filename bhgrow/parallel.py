@@ -13,7 +13,11 @@ independent chunks:
 2. :func:`run_chunks` runs the chunks in this process, in local worker processes
    (:class:`concurrent.futures.ProcessPoolExecutor`; each worker holds the forest once and
    receives only forest ids), or on a ``dask.distributed`` cluster (each task receives its
-   sub-forest); results come back in plan order, whatever order they finish in.
+   sub-forest); results come back in plan order, whatever order they finish in. The trees
+   are an in-memory :class:`~bhgrow.trees.forest.Forest` or a lazily read HDF5 file
+   (:class:`~bhgrow.trees.io.HDF5Forests`): then each worker process opens the file itself
+   and reads only the forests of its chunk, and for Dask the parent reads one chunk per
+   task in flight, so memory depends on the chunk size, not on the file.
 3. :class:`Checkpoint` writes every finished chunk at once and atomically into
    ``<run dir>.partial/``; a resumed run reuses the finished chunks and runs the rest, so an
    interrupted run loses at most the chunks in flight.
@@ -49,6 +53,7 @@ import numpy as np
 
 from . import __version__, engine
 from .errors import BhgrowInputError
+from .trees.forest import Forest
 
 # run-settings keys that choose how a run executes, not what it computes (left out of the
 # checkpoint's config hash, so a run may resume with another chunk size, worker count or
@@ -63,7 +68,7 @@ DASK_HINT = "pip install -e '.[dask]'"
 # planning
 # ------------------------------------------------------------------------------------------
 def plan_chunks(nodes_per_forest, max_nodes: int, n_workers: int = 1, *,
-                forest_ids=None) -> list:
+                forest_ids=None, contiguous: bool = False) -> list:
     """Cut forests into chunks of whole forests by cost, largest chunk first.
 
     Parameters
@@ -78,6 +83,11 @@ def plan_chunks(nodes_per_forest, max_nodes: int, n_workers: int = 1, *,
         so every worker gets a share.
     forest_ids : array_like of int, optional
         Forest ids; default ``0 .. n-1`` (positions).
+    contiguous : bool
+        Pack the forests below the target size into runs of consecutive forests in the
+        order given (for a file read chunk by chunk, its row order: each chunk is then read
+        from one stretch of the file), cut where the running node count passes multiples
+        of the mean chunk load.
 
     Returns
     -------
@@ -90,7 +100,10 @@ def plan_chunks(nodes_per_forest, max_nodes: int, n_workers: int = 1, *,
     Forests with at least the target node count run alone. The others are taken in order
     of decreasing cost and each goes to the least-loaded open chunk if it fits under
     ``max_nodes``, else opens a new chunk ("worst fit decreasing"; the list-scheduling rule
-    of Graham 1969, SIAM J. Appl. Math. 17, 416). The plan depends only on the inputs.
+    of Graham 1969, SIAM J. Appl. Math. 17, 416). With ``contiguous`` they are cut into the
+    same number of runs instead (more if a run would exceed ``max_nodes``); a run exceeds
+    the mean load by less than its largest forest, the bound the list rule also gives. The
+    plan depends only on the inputs.
     """
     cost = np.asarray(nodes_per_forest, dtype=np.int64)
     if cost.ndim != 1:
@@ -117,7 +130,12 @@ def plan_chunks(nodes_per_forest, max_nodes: int, n_workers: int = 1, *,
     rest = order[cost[order] < target]
     chunks = [[int(i)] for i in alone]
     loads = [int(cost[i]) for i in alone]
-    if rest.size:
+    if rest.size and contiguous:
+        for run in _contiguous_runs(cost, np.sort(rest), int(max_nodes),
+                                    int(n_workers) - len(alone)):
+            chunks.append(run.tolist())
+            loads.append(int(cost[run].sum()))
+    elif rest.size:
         rest_total = int(cost[rest].sum())
         k = max(math.ceil(rest_total / int(max_nodes)), int(n_workers) - len(alone), 1)
         k = min(k, int(rest.size))
@@ -144,6 +162,26 @@ def plan_chunks(nodes_per_forest, max_nodes: int, n_workers: int = 1, *,
     return [out[j] for j in rank]
 
 
+def _contiguous_runs(cost, members, max_nodes: int, min_runs: int) -> list:
+    """Cut ``members`` (positions, in order) into runs of about equal node count, none
+    above ``max_nodes`` (each member costs less than ``max_nodes``)."""
+    c = cost[members]
+    cum = np.cumsum(c)
+    total = int(cum[-1])
+    k = min(max(math.ceil(total / max_nodes), min_runs, 1), members.size)
+    cuts = np.searchsorted(cum, np.arange(1, k) * (total / k), side="right")
+    bounds = np.unique(np.r_[0, cuts, members.size])
+    runs = []
+    for a, b in zip(bounds[:-1], bounds[1:]):
+        while b - a > 1 and int(c[a:b].sum()) > max_nodes:   # rare: split off a full run
+            stop = a + max(1, int(np.searchsorted(np.cumsum(c[a:b]), max_nodes,
+                                                  side="right")))
+            runs.append(members[a:stop])
+            a = stop
+        runs.append(members[a:b])
+    return runs
+
+
 def n_local_workers(workers: int) -> int:
     """Worker processes for ``workers`` (0 = one per CPU core)."""
     if workers == 0:
@@ -156,7 +194,14 @@ def n_local_workers(workers: int) -> int:
 # digests (what a checkpoint must match)
 # ------------------------------------------------------------------------------------------
 def forest_sha256(forest) -> str:
-    """SHA-256 of a forest's content (node columns, snapshots, weights, box), any format."""
+    """SHA-256 of a forest's content (node columns, snapshots, weights, box), any format.
+
+    For a lazily read file (:class:`~bhgrow.trees.io.HDF5Forests`) it is the SHA-256 of the
+    file's bytes (read in blocks), with its box, so the forest never needs to be in memory.
+    """
+    if not isinstance(forest, Forest):
+        text = f"file:{forest.sha256()}:box_mpc:{forest.box_mpc!r}"
+        return hashlib.sha256(text.encode()).hexdigest()
     h = hashlib.sha256()
 
     def add(name, arr):
@@ -372,14 +417,16 @@ def compact_result(result):
 
 
 def _sub_forest(forest, ids):
+    """The Forest of the forests ``ids``: a selection in memory, or read from the file."""
     ids = np.asarray(ids, dtype=np.int64)
-    if ids.size == forest.n_forests:
+    if isinstance(forest, Forest) and ids.size == forest.n_forests:
         return forest
     return forest.select_forests(ids)
 
 
 def run_one_chunk(forest, ids, model, run, cosmo):
-    """Run the engine on the forests ``ids`` of ``forest``; a compact EngineResult."""
+    """Run the engine on the forests ``ids`` of ``forest`` (a Forest, or an HDF5Forests
+    to read them from); a compact EngineResult."""
     return compact_result(engine.run_forest(_sub_forest(forest, ids), model, run, cosmo))
 
 
@@ -412,7 +459,11 @@ def _dask_chunk(index: int, sub, model, run, cosmo):
 
 
 def default_start_method() -> str:
-    """``fork`` on Linux (workers inherit the forest, nothing to import), else ``spawn``."""
+    """``fork`` on Linux (workers inherit the forest, nothing to import), else ``spawn``.
+
+    A lazily read file (:class:`~bhgrow.trees.io.HDF5Forests`) holds no open HDF5 handle,
+    so forked workers open the file afresh.
+    """
     return "fork" if sys.platform.startswith("linux") else "spawn"
 
 
@@ -452,7 +503,9 @@ def run_chunks(forest, plan: list, model, run, cosmo, *, workers: int = 1, clien
 
     Parameters
     ----------
-    forest : Forest
+    forest : Forest or HDF5Forests
+        The trees in memory, or a file read chunk by chunk (workers open it themselves;
+        with Dask the parent reads each task's chunk).
     plan : list of ndarray
         Forest ids per chunk (:func:`plan_chunks`), in the order they are handed out.
     model, run, cosmo

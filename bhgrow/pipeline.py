@@ -17,7 +17,7 @@ from .engine import CHANNEL_NAMES, SINKING, STATUS_NAMES, BlackHoles
 from .errors import BhgrowInputError
 from .output import RunDirectory, file_sha256, write_ecsv, write_histories, write_json
 from .trees.forest import Forest
-from .trees.io import load_forest
+from .trees.io import HDF5Forests, is_hdf5_path, load_forest, open_forests
 
 DEMO_TREES = Path(__file__).resolve().parents[1] / "trees_demo" / "tarn_hollow.h5"
 
@@ -41,7 +41,7 @@ class RunResult:
     baryons: dict
     n_seeds: dict
     provenance: dict
-    forest: Forest
+    forest: "Forest | HDF5Forests"  # the trees (a lazily read file: its index only)
     mergers: "object" = None     # astropy Table, one row per coalescence
     pending: "object" = None     # astropy Table, pairs still sinking at the end
     summary: dict | None = None  # headline numbers (when products were written)
@@ -58,18 +58,47 @@ def _merge(parts: list) -> BlackHoles:
     return out
 
 
-def run_model(forest: Forest, config: Config | None = None, *, progress: bool = False,
-              trees_path=None, workers: int | None = None, dask=None,
+def _merge_histories(results: list) -> dict:
+    """The chunks' histories as one set of columns sorted by (bh_id, t_gyr).
+
+    Column by column, releasing each chunk's part once it is copied, so the merge holds
+    little more than the merged columns (the chunks' results give up their histories).
+    """
+    from .engine import History
+
+    parts = []
+    for r in results:
+        hist, r.history = r.history, History()
+        cols = hist.parts[0] if len(hist.parts) == 1 else tuple(hist.columns().values())
+        parts.append(list(cols))
+        del hist, cols
+    names = list(History().columns())
+    order = np.lexsort((np.concatenate([p[1] for p in parts]),
+                        np.concatenate([p[0] for p in parts])))
+    out = {}
+    for i, name in enumerate(names):
+        col = np.concatenate([p[i] for p in parts])
+        for p in parts:
+            p[i] = None
+        out[name] = col[order]
+        del col
+    return out
+
+
+def run_model(forest: "Forest | HDF5Forests", config: Config | None = None, *,
+              progress: bool = False, trees_path=None, workers: int | None = None, dask=None,
               checkpoint_dir=None, resume: bool = False) -> RunResult:
     """Run the engine over a forest (in chunks of whole forests) and collect the results.
 
     Chunks are planned by cost, largest first (:func:`bhgrow.parallel.plan_chunks`) and run
     here, in local worker processes or on Dask; the results are the same, bit for bit, for
-    any plan, worker count and backend.
+    any plan, worker count and backend, and for trees in memory or read chunk by chunk.
 
     Parameters
     ----------
-    forest : Forest
+    forest : Forest or HDF5Forests
+        Trees in memory, or an HDF5 file opened with :func:`bhgrow.trees.io.open_forests`
+        (read one chunk at a time; checked as a whole first if not yet checked).
     config : Config, optional
         Default config when None.
     progress : bool
@@ -93,6 +122,8 @@ def run_model(forest: Forest, config: Config | None = None, *, progress: bool = 
     config = config or load_config(None)
     cosmo = Cosmology.from_name(config.run.cosmology)
     t0 = time.perf_counter()
+    if isinstance(forest, HDF5Forests) and not forest.checked:
+        forest.check(config.run.chunk_nodes)
     workers = config.run.workers if workers is None else workers
     dask = dask if dask is not None else (config.run.dask_scheduler or None)
     client, owned = par.connect_dask(dask) if dask else (None, False)
@@ -100,9 +131,16 @@ def run_model(forest: Forest, config: Config | None = None, *, progress: bool = 
         slots = par.dask_slots(client) if client is not None else par.n_local_workers(workers)
         npf = forest.nodes_per_forest()
 
+        # a file whose rows are grouped by forest: chunks of neighbouring forests, so each
+        # chunk is read from one stretch of the file
+        contiguous = isinstance(forest, HDF5Forests) and forest.grouped
+
         def planner(ids):
+            if contiguous:
+                ids = forest.in_file_order(ids)
             return par.plan_chunks(npf[np.searchsorted(forest.forest_ids, ids)],
-                                   config.run.chunk_nodes, slots, forest_ids=ids)
+                                   config.run.chunk_nodes, slots, forest_ids=ids,
+                                   contiguous=contiguous)
 
         plan = planner(forest.forest_ids)
         ckpt = None
@@ -119,10 +157,7 @@ def run_model(forest: Forest, config: Config | None = None, *, progress: bool = 
         if owned:
             client.close()
     bh = _merge([r.black_holes for r in results])
-    hist_cols = [r.history.columns() for r in results]
-    hist = {k: np.concatenate([h[k] for h in hist_cols]) for k in hist_cols[0]}
-    order = np.lexsort((hist["t_gyr"], hist["bh_id"]))
-    hist = {k: v[order] for k, v in hist.items()}
+    hist = _merge_histories(results)
     o = np.argsort(bh.bh_id, kind="stable")
     weights = forest.volume_weight() if (forest.forest_weight is not None
                                          or forest.box_mpc is not None) else None
@@ -184,7 +219,7 @@ def run_model(forest: Forest, config: Config | None = None, *, progress: bool = 
     pending = _pending_table(bh, forest, cosmo, weights)
     prov = {"bhgrow_version": __version__, "seed": config.run.seed,
             "cosmology": cosmo.to_dict(), "trees": str(trees_path) if trees_path else None,
-            "trees_sha256": file_sha256(trees_path) if trees_path else None,
+            "trees_sha256": _trees_sha256(forest, trees_path),
             "n_forests": forest.n_forests, "n_nodes": forest.n_nodes,
             "n_chunks": len(plan), "backend": ("dask" if client is not None else
                                                  "processes" if slots > 1 else "serial"),
@@ -199,6 +234,15 @@ def run_model(forest: Forest, config: Config | None = None, *, progress: bool = 
     return RunResult(black_holes=table, histories=hist, ledger=ledger, baryons=baryons,
                      n_seeds=n_seeds, provenance=prov, forest=forest, mergers=mergers,
                      pending=pending)
+
+
+def _trees_sha256(forest, trees_path):
+    """SHA-256 of the tree file (computed once for a lazily read file)."""
+    if not trees_path:
+        return None
+    if isinstance(forest, HDF5Forests) and Path(trees_path).resolve() == forest.path.resolve():
+        return forest.sha256()
+    return file_sha256(trees_path)
 
 
 _MERGER_COLUMNS = [
@@ -300,17 +344,46 @@ def _combine_ledger(parts: list, plan: list, bh: BlackHoles) -> dict:
             "per_forest_residual": resid[np.argsort(ids, kind="stable")]}
 
 
+#: rows formatted at a time when writing a catalogue (astropy's ECSV writer holds the text
+#: of every row it is given: ~1 kB per row)
+ECSV_ROWS = 10_000
+
+
+def _write_ecsv_rows(table, path: Path, meta: dict | None = None) -> None:
+    """:func:`bhgrow.output.write_ecsv`, formatting at most :data:`ECSV_ROWS` rows at a time.
+
+    The first rows are written with the header; the rows of each further slice are
+    formatted by the same writer and appended without their header, so the file is the
+    same, byte for byte, as one written whole (tested).
+    """
+    import io
+
+    if len(table) <= ECSV_ROWS:
+        write_ecsv(table, path, meta=meta)
+        return
+    if meta:
+        table.meta.update(meta)
+    write_ecsv(table[:ECSV_ROWS], path)
+    with open(path, "a", newline="") as fh:
+        for start in range(ECSV_ROWS, len(table), ECSV_ROWS):
+            buf = io.StringIO(newline="")
+            table[start:start + ECSV_ROWS].write(buf, format="ascii.ecsv", delimiter=",")
+            lines = buf.getvalue().splitlines(keepends=True)
+            n_head = next(i for i, ln in enumerate(lines) if not ln.startswith("#"))
+            fh.writelines(lines[n_head + 1:])           # + 1: the column-name line
+
+
 def write_run(result: RunResult, config: Config, out, *, overwrite: bool = False,
               products: bool = True) -> Path:
     """Write a run directory atomically (see :mod:`bhgrow.output`)."""
     with RunDirectory(out, overwrite=overwrite) as tmp:
-        write_ecsv(result.black_holes, tmp / "black_holes.ecsv",
-                   meta={"made_by": f"bhgrow {__version__}", "seed": config.run.seed,
-                         "trees": result.provenance.get("trees")})
-        write_ecsv(result.mergers, tmp / "mergers.ecsv",
-                   meta={"made_by": f"bhgrow {__version__}", "seed": config.run.seed})
-        write_ecsv(result.pending, tmp / "pending_pairs.ecsv",
-                   meta={"made_by": f"bhgrow {__version__}", "seed": config.run.seed})
+        _write_ecsv_rows(result.black_holes, tmp / "black_holes.ecsv",
+                         meta={"made_by": f"bhgrow {__version__}", "seed": config.run.seed,
+                               "trees": result.provenance.get("trees")})
+        _write_ecsv_rows(result.mergers, tmp / "mergers.ecsv",
+                         meta={"made_by": f"bhgrow {__version__}", "seed": config.run.seed})
+        _write_ecsv_rows(result.pending, tmp / "pending_pairs.ecsv",
+                         meta={"made_by": f"bhgrow {__version__}", "seed": config.run.seed})
         if config.run.histories:
             write_histories(result.histories, tmp / "histories.h5")
         (tmp / "config.toml").write_text(write_toml(config.table))
@@ -334,6 +407,9 @@ def run(config=None, *, trees=None, out=None, overwrite: bool = False,
     config : Config, path or None
         A loaded config, a TOML path, or None for all defaults.
     trees : Forest, path or None
+        An HDF5 file is read lazily, one chunk of whole forests at a time
+        (:func:`bhgrow.trees.io.open_forests`; checked as a whole before the run), so memory
+        depends on ``run.chunk_nodes``, not on the file; CSV/Parquet tables are read whole.
     out : path, optional
         Run directory to write (refused if it exists unless ``overwrite``). Finished chunks
         are kept in ``<out>.partial/`` until the run directory is written.
@@ -353,7 +429,8 @@ def run(config=None, *, trees=None, out=None, overwrite: bool = False,
         forest, path = trees, None
     else:
         path = Path(trees) if trees is not None else demo_trees_path()
-        forest = load_forest(path)
+        forest = (open_forests(path, max_nodes=config.run.chunk_nodes) if is_hdf5_path(path)
+                  else load_forest(path))
     partial = None
     if out is not None:
         out = Path(out)

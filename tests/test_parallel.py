@@ -17,6 +17,7 @@ import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from run_compare import assert_same
 
 from bhgrow import engine
 from bhgrow.cli import main
@@ -41,24 +42,6 @@ def reference(sub):
     r = run_model(sub, from_table({"run": {**FAST, "chunk_nodes": 10**9}}), workers=1)
     assert r.provenance["n_chunks"] == 1
     return r
-
-
-def assert_same(a, b):
-    for name in ("black_holes", "mergers", "pending"):
-        ta, tb = getattr(a, name), getattr(b, name)
-        assert ta.colnames == tb.colnames
-        assert len(ta) == len(tb), name
-        for col in ta.colnames:
-            np.testing.assert_array_equal(ta[col], tb[col], err_msg=f"{name}.{col}")
-    assert a.histories.keys() == b.histories.keys()
-    for col in a.histories:
-        np.testing.assert_array_equal(a.histories[col], b.histories[col], err_msg=col)
-    np.testing.assert_array_equal(a.ledger["per_forest_residual"],
-                                  b.ledger["per_forest_residual"])
-    for key in ("total_final_msun", "total_seed_msun", "total_growth_msun",
-                "total_radiated_msun", "total_ejected_msun"):
-        assert a.ledger[key] == b.ledger[key], key
-    assert a.n_seeds == b.n_seeds
 
 
 # ------------------------------------------------------------------ planning

@@ -93,7 +93,7 @@ class Forest:
     @classmethod
     def from_columns(cls, columns: dict, snap_nums, snap_z, *, box_mpc=None,
                      forest_weight: dict | None = None, meta: dict | None = None,
-                     source: str = "<memory>") -> "Forest":
+                     source: str = "<memory>", check: bool = True) -> "Forest":
         """Validate node columns and build a forest.
 
         Parameters
@@ -113,6 +113,9 @@ class Forest:
             Provenance.
         source : str
             File name for error messages.
+        check : bool
+            Apply the validation rules (default). Only a reader whose file has already
+            passed them as a whole (:meth:`bhgrow.trees.io.HDF5Forests.check`) skips this.
 
         Raises
         ------
@@ -125,7 +128,8 @@ class Forest:
                 f"{source}: unknown node columns {', '.join(map(repr, unknown))}; bhgrow "
                 f"columns are {', '.join(list(REQUIRED_COLUMNS) + list(OPTIONAL_COLUMNS))}",
                 source=source, rule="unknown_columns", rows=unknown)
-        validate(columns, snap_nums, snap_z, source=source)
+        if check:
+            validate(columns, snap_nums, snap_z, source=source)
         node_id = np.asarray(columns["node_id"]).astype(np.int64)
         desc_id = np.asarray(columns["desc_id"]).astype(np.int64)
         forest_id = np.asarray(columns["forest_id"]).astype(np.int64)
@@ -294,13 +298,20 @@ class Forest:
         Weighted (EPS) forests carry their own weights; simulation trees give every forest
         ``1 / box_mpc**3``. Raises if the forest has neither.
         """
-        if self.forest_weight is not None:
-            return self.forest_weight
-        if self.box_mpc is not None:
-            return np.full(self.n_forests, 1.0 / self.box_mpc**3)
-        raise BhgrowInputError("the forest has neither per-forest weights nor a box size, so "
-                               "no rate per comoving volume can be formed; give a box size "
-                               "(--box-mpc) or weight_mpc3", rule="no_volume")
+        return volume_weights(self.forest_weight, self.box_mpc, self.n_forests)
+
+
+def volume_weights(forest_weight, box_mpc, n_forests: int) -> np.ndarray:
+    """Per-forest comoving number density [Mpc^-3]: the forests' own weights, else
+    ``1 / box_mpc**3`` each; a clear error if there is neither (in-memory and lazily read
+    forests share this rule)."""
+    if forest_weight is not None:
+        return forest_weight
+    if box_mpc is not None:
+        return np.full(n_forests, 1.0 / box_mpc**3)
+    raise BhgrowInputError("the forest has neither per-forest weights nor a box size, so "
+                           "no rate per comoving volume can be formed; give a box size "
+                           "(--box-mpc) or weight_mpc3", rule="no_volume")
 
 
 def _align_forest_weights(fids: np.ndarray, forest_weight: dict, source: str) -> np.ndarray:

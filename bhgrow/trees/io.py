@@ -13,6 +13,13 @@ bhgrow's own HDF5 layout (schema version 1)
     /snapshots/z            their redshifts (float64)
     /forests/forest_id      (optional) per-forest table ...
     /forests/weight_mpc3    ... comoving number density each forest represents [Mpc^-3]
+    /forest_rows/forest_id  (optional) sorted forest ids, and the row range of each:
+    /forest_rows/offset     rows offset[i]:offset[i+1] of /nodes hold forest i (written by
+                            write_hdf5, whose node rows are grouped by forest; files
+                            without it are indexed by reading forest_id)
+
+:func:`read_hdf5` reads a whole file; :func:`open_forests` reads an index and then chunks of
+whole forests on demand (:class:`HDF5Forests`), for files larger than memory.
 
 Tables (CSV, or Parquet when pyarrow is installed)
 --------------------------------------------------
@@ -27,6 +34,7 @@ All writers are atomic: they write ``<name>.tmp-<pid>`` and rename it into place
 
 from __future__ import annotations
 
+import hashlib
 import json
 import os
 from pathlib import Path
@@ -34,8 +42,10 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import BhgrowInputError
-from .forest import Forest
-from .validate import OPTIONAL_COLUMNS, REQUIRED_COLUMNS
+from ..output import file_sha256
+from .forest import Forest, SnapshotTable, _align_forest_weights, volume_weights
+from .validate import (OPTIONAL_COLUMNS, REQUIRED_COLUMNS, ChunkedCheck, _coerce_int,
+                       layout_problems, merge_problems, raise_problems)
 
 FORMAT_NAME = "bhgrow-forest"
 SCHEMA_VERSION = 1
@@ -61,6 +71,10 @@ def atomic_replace(tmp: Path, path: Path) -> None:
 def write_hdf5(forest: Forest, path, *, overwrite: bool = False) -> Path:
     """Write a forest in bhgrow's HDF5 layout (atomically).
 
+    Node rows are stored grouped by forest (forest id, then snapshot, then node id), with
+    the row range of every forest in ``/forest_rows``, so :func:`open_forests` can read any
+    set of forests without reading the rest of the file.
+
     Parameters
     ----------
     forest : Forest
@@ -75,6 +89,10 @@ def write_hdf5(forest: Forest, path, *, overwrite: bool = False) -> Path:
         raise BhgrowInputError(f"{path}: file exists; refusing to overwrite it",
                                source=str(path), rule="exists")
     tmp = _tmp_path(path)
+    order = np.lexsort((forest.node_id, forest.snap, forest.forest_id))
+    counts = forest.nodes_per_forest()
+    offset = np.zeros(forest.n_forests + 1, dtype=np.int64)
+    np.cumsum(counts, out=offset[1:])
     try:
         with h5py.File(tmp, "w") as h5:
             h5.attrs["format"] = FORMAT_NAME
@@ -84,9 +102,9 @@ def write_hdf5(forest: Forest, path, *, overwrite: bool = False) -> Path:
             h5.attrs["meta_json"] = json.dumps(forest.meta, sort_keys=True, default=str)
             g = h5.create_group("nodes")
             for name in ("node_id", "desc_id", "forest_id", "snap", "mass_msun"):
-                g.create_dataset(name, data=getattr(forest, name), **_COMPRESS)
+                g.create_dataset(name, data=getattr(forest, name)[order], **_COMPRESS)
             for name, arr in forest.extra.items():
-                g.create_dataset(name, data=arr, **_COMPRESS)
+                g.create_dataset(name, data=arr[order], **_COMPRESS)
             s = h5.create_group("snapshots")
             s.create_dataset("snap", data=forest.snapshots.snap)
             s.create_dataset("z", data=forest.snapshots.z)
@@ -94,6 +112,9 @@ def write_hdf5(forest: Forest, path, *, overwrite: bool = False) -> Path:
                 f = h5.create_group("forests")
                 f.create_dataset("forest_id", data=forest.forest_ids)
                 f.create_dataset("weight_mpc3", data=forest.forest_weight)
+            r = h5.create_group(INDEX_GROUP)
+            r.create_dataset("forest_id", data=forest.forest_ids, **_COMPRESS)
+            r.create_dataset("offset", data=offset, **_COMPRESS)
         atomic_replace(tmp, path)
     finally:
         if tmp.exists():
@@ -101,7 +122,8 @@ def write_hdf5(forest: Forest, path, *, overwrite: bool = False) -> Path:
     return path
 
 
-def _read_dataset(h5, name: str, source: str):
+def _dataset(h5, name: str, source: str):
+    """The 1-D numeric dataset ``name`` (checked from its header; nothing is read)."""
     ds = h5[name]
     if not hasattr(ds, "shape"):
         raise BhgrowInputError(f"{source}: `{name}` is a group, expected a 1-D dataset",
@@ -109,15 +131,18 @@ def _read_dataset(h5, name: str, source: str):
     if ds.ndim != 1:
         raise BhgrowInputError(f"{source}: dataset `{name}` must be 1-D; has shape {ds.shape}",
                                source=source, rule="wrong_layout")
-    arr = ds[()]
-    if arr.dtype.kind not in "iufb":
+    if ds.dtype.kind not in "iufb":
         raise BhgrowInputError(f"{source}: [wrong_dtype] dataset `{name}` must be numeric; "
-                               f"has dtype {arr.dtype}", source=source, rule="wrong_dtype")
-    return arr
+                               f"has dtype {ds.dtype}", source=source, rule="wrong_dtype")
+    return ds
 
 
-def read_hdf5(path) -> Forest:
-    """Read and validate a forest written in bhgrow's HDF5 layout."""
+def _read_dataset(h5, name: str, source: str):
+    return _dataset(h5, name, source)[()]
+
+
+def _open_h5(path):
+    """Open a bhgrow forest file and check its header; ``(h5py.File, source)``."""
     import h5py
 
     path = Path(path)
@@ -128,60 +153,575 @@ def read_hdf5(path) -> Forest:
     except OSError as exc:
         raise BhgrowInputError(f"{source}: not a readable HDF5 file ({exc})", source=source,
                                rule="not_hdf5") from None
-    with h5:
-        fmt = h5.attrs.get("format")
-        if isinstance(fmt, bytes):
-            fmt = fmt.decode()
-        if not (isinstance(fmt, str) and fmt == FORMAT_NAME):
-            raise BhgrowInputError(
-                f"{source}: not a bhgrow forest file (attribute format={fmt!r}, expected "
-                f"{FORMAT_NAME!r}); tables from other codes load with a column map "
-                f"(see `bhgrow trees check --help`)", source=source, rule="wrong_format")
-        try:
-            version = int(h5.attrs.get("schema_version", -1))
-        except (TypeError, ValueError):
-            version = -1
-        if version != SCHEMA_VERSION:
-            raise BhgrowInputError(f"{source}: schema version {version} is not supported "
-                                   f"(this bhgrow reads version {SCHEMA_VERSION})",
-                                   source=source, rule="schema_version")
-        for grp in ("nodes", "snapshots"):
-            if grp not in h5:
-                raise BhgrowInputError(f"{source}: group `/{grp}` is missing", source=source,
-                                       rule="missing_columns")
-        for grp in ("nodes", "snapshots", "forests"):
-            if grp in h5 and not isinstance(h5[grp], h5py.Group):
-                raise BhgrowInputError(f"{source}: `/{grp}` must be a group of 1-D datasets",
-                                       source=source, rule="wrong_layout")
-        unknown = sorted(set(h5["nodes"]) - set(_KNOWN))
-        if unknown:
-            raise BhgrowInputError(f"{source}: unknown node columns {unknown}; bhgrow "
-                                   f"columns are {_KNOWN}", source=source,
-                                   rule="unknown_columns", rows=unknown)
-        cols = {name: _read_dataset(h5, f"nodes/{name}", source) for name in h5["nodes"]}
-        for name in ("snap", "z"):
-            if name not in h5["snapshots"]:
-                raise BhgrowInputError(f"{source}: dataset `/snapshots/{name}` is missing",
-                                       source=source, rule="bad_snapshot_table")
-        snap = _read_dataset(h5, "snapshots/snap", source)
-        z = _read_dataset(h5, "snapshots/z", source)
-        weights = None
-        if "forests" in h5:
-            weights = {k: _read_dataset(h5, f"forests/{k}", source)
-                       for k in ("forest_id", "weight_mpc3") if k in h5["forests"]}
-            if len(weights) != 2:
-                raise BhgrowInputError(f"{source}: `/forests` needs both `forest_id` and "
-                                       f"`weight_mpc3`", source=source, rule="bad_weights")
-        box = h5.attrs.get("box_mpc")
-        try:
-            meta = json.loads(h5.attrs.get("meta_json", "{}"))
-        except (TypeError, ValueError):
-            meta = {}
-        if not isinstance(meta, dict):
-            meta = {}
+    try:
+        _check_header(h5, source)
+    except BaseException:
+        h5.close()
+        raise
+    return h5, source
+
+
+def _check_header(h5, source: str) -> None:
+    import h5py
+
+    fmt = h5.attrs.get("format")
+    if isinstance(fmt, bytes):
+        fmt = fmt.decode()
+    if not (isinstance(fmt, str) and fmt == FORMAT_NAME):
+        raise BhgrowInputError(
+            f"{source}: not a bhgrow forest file (attribute format={fmt!r}, expected "
+            f"{FORMAT_NAME!r}); tables from other codes load with a column map "
+            f"(see `bhgrow trees check --help`)", source=source, rule="wrong_format")
+    try:
+        version = int(h5.attrs.get("schema_version", -1))
+    except (TypeError, ValueError):
+        version = -1
+    if version != SCHEMA_VERSION:
+        raise BhgrowInputError(f"{source}: schema version {version} is not supported "
+                               f"(this bhgrow reads version {SCHEMA_VERSION})",
+                               source=source, rule="schema_version")
+    for grp in ("nodes", "snapshots"):
+        if grp not in h5:
+            raise BhgrowInputError(f"{source}: group `/{grp}` is missing", source=source,
+                                   rule="missing_columns")
+    for grp in ("nodes", "snapshots", "forests"):
+        if grp in h5 and not isinstance(h5[grp], h5py.Group):
+            raise BhgrowInputError(f"{source}: `/{grp}` must be a group of 1-D datasets",
+                                   source=source, rule="wrong_layout")
+    unknown = sorted(set(h5["nodes"]) - set(_KNOWN))
+    if unknown:
+        raise BhgrowInputError(f"{source}: unknown node columns {unknown}; bhgrow "
+                               f"columns are {_KNOWN}", source=source,
+                               rule="unknown_columns", rows=unknown)
+
+
+def _read_tables(h5, source: str):
+    """Snapshot table, forest weight table, box and provenance of an open forest file."""
+    for name in ("snap", "z"):
+        if name not in h5["snapshots"]:
+            raise BhgrowInputError(f"{source}: dataset `/snapshots/{name}` is missing",
+                                   source=source, rule="bad_snapshot_table")
+    snap = _read_dataset(h5, "snapshots/snap", source)
+    z = _read_dataset(h5, "snapshots/z", source)
+    weights = None
+    if "forests" in h5:
+        weights = {k: _read_dataset(h5, f"forests/{k}", source)
+                   for k in ("forest_id", "weight_mpc3") if k in h5["forests"]}
+        if len(weights) != 2:
+            raise BhgrowInputError(f"{source}: `/forests` needs both `forest_id` and "
+                                   f"`weight_mpc3`", source=source, rule="bad_weights")
+    box = h5.attrs.get("box_mpc")
+    try:
+        meta = json.loads(h5.attrs.get("meta_json", "{}"))
+    except (TypeError, ValueError):
+        meta = {}
+    if not isinstance(meta, dict):
+        meta = {}
     meta.setdefault("source_file", source)
+    return snap, z, weights, box, meta
+
+
+def read_hdf5(path) -> Forest:
+    """Read and validate a forest written in bhgrow's HDF5 layout (the whole file at once).
+
+    For files larger than memory use :func:`open_forests`, which reads chunks of forests.
+    """
+    h5, source = _open_h5(path)
+    with h5:
+        cols = {name: _read_dataset(h5, f"nodes/{name}", source) for name in h5["nodes"]}
+        snap, z, weights, box, meta = _read_tables(h5, source)
     return Forest.from_columns(cols, snap, z, box_mpc=box, forest_weight=weights, meta=meta,
                                source=source)
+
+
+# ---------------------------------------------------------------- lazy, chunk by chunk
+#: rows per read when a column is streamed (bounds the reader's buffers: 8 MB per column)
+READ_BLOCK_ROWS = 1 << 20
+#: row ranges of wanted forests closer than this are read as one span (and the gap dropped)
+GAP_ROWS = 1 << 16
+#: group holding the row range of every forest (``forest_id``, ``offset``)
+INDEX_GROUP = "forest_rows"
+
+
+def _read_span(ds, start: int, stop: int) -> np.ndarray:
+    """Rows ``start:stop`` of a 1-D dataset: every read of :class:`HDF5Forests` is one."""
+    return ds[start:stop]
+
+
+def _blocks(n: int):
+    step = max(1, int(READ_BLOCK_ROWS))
+    for a in range(0, n, step):
+        yield a, min(n, a + step)
+
+
+class HDF5Forests:
+    """A bhgrow HDF5 forest file read chunk by chunk (open it with :func:`open_forests`).
+
+    On opening, only a small index is read: the forest ids, the node count and row range of
+    every forest, the snapshot table, the forest weights, the box and the provenance. Node
+    columns are read only by :meth:`select_forests`, for the forests asked for, in spans
+    of at most :data:`READ_BLOCK_ROWS` rows, so memory depends on the chunk, not on the
+    file.
+
+    Files written by :func:`write_hdf5` store their rows grouped by forest with the row
+    range of each forest in ``/forest_rows``: a chunk is read from those ranges. Other
+    files (older bhgrow files, or files written by other tools) are indexed by one streaming
+    pass over ``forest_id``; if their rows are grouped by forest they are then read the
+    same way, else every chunk streams the file and keeps its forests' rows.
+
+    It offers the forest-level part of the :class:`~bhgrow.trees.forest.Forest` interface
+    (``forest_ids``, ``nodes_per_forest``, ``forest_weight``, ``box_mpc``,
+    ``volume_weight``, ``snapshots``, ``meta``, ``n_forests``, ``n_nodes``) and
+    ``select_forests(ids) -> Forest``; it holds no open file (worker processes open the file
+    themselves) and can be pickled.
+
+    Attributes
+    ----------
+    path : Path
+    source : str
+        File name used in messages.
+    grouped : bool
+        The file's rows are grouped by forest (read by row ranges).
+    checked : bool
+        :meth:`check` found the whole file valid.
+    """
+
+    def __init__(self, path, *, box_mpc: float | None = None):
+        self.path = Path(path)
+        h5, source = _open_h5(self.path)
+        self.source = source
+        with h5:
+            names = list(h5["nodes"])
+            for name in names:
+                _dataset(h5, f"nodes/{name}", source)
+            self._snap_raw, self._z_raw, self._weight_table, self._box_raw, self.meta = \
+                _read_tables(h5, source)
+            problems = layout_problems({name: h5[f"nodes/{name}"].shape for name in names})
+            if problems:
+                raise_problems(problems, source)
+            self.columns = names
+            self._dtype = {name: h5[f"nodes/{name}"].dtype for name in names}
+            self.n_nodes = int(h5["nodes/node_id"].shape[0])
+            if INDEX_GROUP in h5:
+                self._read_index(h5)
+            else:
+                self._scan_index(h5)
+        self._box_override = box_mpc
+        self._stamp = self._file_stamp()
+        self._sha256 = None
+        self._weights = None
+        self._snapshots = None
+        self.checked = False
+
+    # ------------------------------------------------------------ index
+    def _bad_index(self, why: str):
+        return BhgrowInputError(
+            f"{self.source}: [bad_index] the forest index `/{INDEX_GROUP}` does not match "
+            f"the node table ({why}); rewrite the file with bhgrow, or delete the group "
+            f"`/{INDEX_GROUP}` and the file is indexed by reading `forest_id`",
+            source=self.source, rule="bad_index")
+
+    def _read_index(self, h5) -> None:
+        g = h5[INDEX_GROUP]
+        if not hasattr(g, "keys") or not {"forest_id", "offset"} <= set(g):
+            raise self._bad_index("it needs datasets `forest_id` and `offset`")
+        try:
+            fid = _read_dataset(h5, f"{INDEX_GROUP}/forest_id", self.source)
+            off = _read_dataset(h5, f"{INDEX_GROUP}/offset", self.source)
+        except BhgrowInputError as exc:
+            raise self._bad_index(str(exc).split(": ", 1)[-1]) from None
+        if fid.dtype.kind not in "iu" or off.dtype.kind not in "iu":
+            raise self._bad_index("its datasets must hold integers")
+        fid, off = fid.astype(np.int64), off.astype(np.int64)
+        if off.size != fid.size + 1 or fid.size == 0:
+            raise self._bad_index(f"{fid.size} forests need {fid.size + 1} offsets; "
+                                  f"has {off.size}")
+        if off[0] != 0 or off[-1] != self.n_nodes or np.any(np.diff(off) <= 0):
+            raise self._bad_index(f"offsets must rise strictly from 0 to {self.n_nodes}")
+        if np.any(np.diff(fid) <= 0):
+            raise self._bad_index("forest ids must be increasing")
+        self.forest_ids = fid
+        self._start, self._stop = off[:-1], off[1:]
+        self._counts = np.diff(off)
+        self.grouped = True
+
+    def _scan_index(self, h5) -> None:
+        """Index a file without `/forest_rows`: one streaming pass over ``forest_id``."""
+        ds = h5["nodes/forest_id"]
+        uniq = np.zeros(0, np.int64)
+        counts = np.zeros(0, np.int64)
+        run_ids, run_starts, n_runs, last = [], [], 0, None
+        grouped = True
+        problems: list = []
+        for a, b in _blocks(self.n_nodes):
+            block_problems: list = []
+            fid = _coerce_int("forest_id", _read_span(ds, a, b), block_problems,
+                              np.arange(a, b))
+            if fid is None:
+                problems += block_problems
+                continue
+            if problems:
+                continue
+            u, c = np.unique(fid, return_counts=True)
+            both = np.concatenate([uniq, u])
+            uniq, inv = np.unique(both, return_inverse=True)
+            counts = np.bincount(inv, weights=np.concatenate([counts, c]),
+                                 minlength=uniq.size).astype(np.int64)
+            if grouped:
+                starts = np.flatnonzero(np.r_[True, fid[1:] != fid[:-1]])
+                ids = fid[starts]
+                if last is not None and ids[0] == last:
+                    starts, ids = starts[1:], ids[1:]
+                run_ids.append(ids)
+                run_starts.append(starts + a)
+                n_runs += ids.size
+                last = fid[-1]
+                if n_runs > uniq.size:           # some forest's rows come in two runs
+                    grouped, run_ids, run_starts = False, [], []
+        if problems:
+            raise_problems(merge_problems([problems]), self.source)
+        self.forest_ids, self._counts = uniq, counts
+        self.grouped = grouped
+        if grouped:
+            ids, starts = np.concatenate(run_ids), np.concatenate(run_starts)
+            o = np.argsort(ids)
+            self._start = starts[o]
+            self._stop = self._start + counts
+        else:
+            self._start = self._stop = None
+
+    # ------------------------------------------------------------ forest-level facts
+    @property
+    def n_forests(self) -> int:
+        return int(self.forest_ids.size)
+
+    def nodes_per_forest(self) -> np.ndarray:
+        """Node count of each forest, aligned with :attr:`forest_ids`."""
+        return self._counts
+
+    @property
+    def snapshots(self) -> SnapshotTable:
+        if self._snapshots is None:
+            s = np.asarray(self._snap_raw).astype(np.int64)
+            o = np.argsort(s, kind="stable")
+            self._snapshots = SnapshotTable(s[o], np.asarray(self._z_raw).astype(np.float64)[o])
+        return self._snapshots
+
+    @property
+    def box_mpc(self) -> float | None:
+        if self._box_override is not None:
+            return float(self._box_override)
+        if self._box_raw is None:
+            return None
+        try:
+            box = float(self._box_raw)
+        except (TypeError, ValueError):
+            box = float("nan")
+        if not np.isfinite(box) or box <= 0:
+            raise BhgrowInputError(f"{self.source}: box size must be finite and > 0 Mpc; got "
+                                   f"{self._box_raw}", source=self.source, rule="bad_box")
+        return box
+
+    @property
+    def forest_weight(self) -> np.ndarray | None:
+        """Per-forest weights [Mpc^-3] aligned with :attr:`forest_ids` (or None)."""
+        if self._weights is None:
+            if self._weight_table is not None:
+                self._weights = _align_forest_weights(self.forest_ids, self._weight_table,
+                                                      self.source)
+            elif "weight_mpc3" in self.columns:
+                self._weights = self._first_weights()
+        return self._weights
+
+    def volume_weight(self) -> np.ndarray:
+        """Comoving number density [Mpc^-3] each forest stands for (see Forest)."""
+        return volume_weights(self.forest_weight, self.box_mpc, self.n_forests)
+
+    def _first_weights(self) -> np.ndarray:
+        """Per-forest weights from a ``weight_mpc3`` node column: the forest's first row."""
+        w = np.full(self.n_forests, np.nan)
+        seen = np.zeros(self.n_forests, dtype=bool)
+        with self._h5() as h5:
+            f_ds, w_ds = h5["nodes/forest_id"], h5["nodes/weight_mpc3"]
+            for a, b in _blocks(self.n_nodes):
+                fid = np.asarray(_read_span(f_ds, a, b)).astype(np.int64)
+                u, first = np.unique(fid, return_index=True)
+                pos = np.searchsorted(self.forest_ids, u)
+                new = ~seen[pos]
+                w[pos[new]] = np.asarray(_read_span(w_ds, a, b), dtype=np.float64)[first[new]]
+                seen[pos[new]] = True
+        return w
+
+    def sha256(self) -> str:
+        """SHA-256 of the file's bytes (read in 1 MB blocks), for checkpoints."""
+        if self._sha256 is None:
+            self._sha256 = file_sha256(self.path)
+        return self._sha256
+
+    # ------------------------------------------------------------ reading
+    def _file_stamp(self):
+        st = os.stat(self.path)
+        return (st.st_size, st.st_mtime_ns)
+
+    def _h5(self):
+        import h5py
+
+        try:
+            stamp = self._file_stamp()
+        except OSError as exc:
+            raise BhgrowInputError(f"{self.source}: cannot read the tree file any more "
+                                   f"({exc})", source=self.source, rule="no_file") from None
+        if stamp != self._stamp:
+            raise BhgrowInputError(f"{self.source}: the tree file changed while it was being "
+                                   f"read; run again on a file that stays put",
+                                   source=self.source, rule="file_changed")
+        return h5py.File(self.path, "r")
+
+    def _positions(self, ids) -> np.ndarray:
+        ids = np.unique(np.asarray(ids, dtype=np.int64))
+        pos = np.minimum(np.searchsorted(self.forest_ids, ids), max(self.n_forests - 1, 0))
+        missing = ids[self.forest_ids[pos] != ids] if self.n_forests else ids
+        if missing.size:
+            raise BhgrowInputError(f"forest ids not present: {missing[:10].tolist()}",
+                                   rule="unknown_forests", rows=missing[:10].tolist())
+        return pos
+
+    def read_columns(self, ids, *, rows: bool = False):
+        """Node columns (as stored) of the forests ``ids``, in file-row order.
+
+        Parameters
+        ----------
+        ids : array_like of int
+            Forest ids (each must be in the file).
+        rows : bool
+            Also return the file row of every node.
+
+        Returns
+        -------
+        dict of str -> ndarray, or (dict, ndarray of int64)
+        """
+        pos = self._positions(ids)
+        with self._h5() as h5:
+            dsets = {name: h5[f"nodes/{name}"] for name in self.columns}
+            if self.grouped:
+                parts, row_parts = self._read_ranges(dsets, pos, rows)
+            else:
+                parts, row_parts = self._read_scan(dsets, pos, rows)
+        cols = {name: (np.concatenate(parts[name]) if parts[name] else
+                       np.zeros(0, self._dtype[name])) for name in self.columns}
+        if rows:
+            return cols, (np.concatenate(row_parts) if row_parts else np.zeros(0, np.int64))
+        return cols
+
+    def _read_ranges(self, dsets, pos, want_rows):
+        """Rows of whole forests from their row ranges, merged into spans of nearby rows."""
+        starts, stops = self._start[pos], self._stop[pos]
+        o = np.argsort(starts, kind="stable")
+        starts, stops, fids = starts[o], stops[o], self.forest_ids[pos][o]
+        block = max(1, int(READ_BLOCK_ROWS))
+        new = np.r_[True, (starts[1:] - stops[:-1] > GAP_ROWS)
+                    | (starts[1:] // block != starts[:-1] // block)]
+        first = np.flatnonzero(new)
+        ends = np.r_[first[1:], starts.size]
+        parts = {name: [] for name in dsets}
+        row_parts = []
+        for i, j in zip(first, ends):
+            a, b = int(starts[i]), int(np.max(stops[i:j]))
+            keep = None
+            if j - i > 1 or stops[i] - starts[i] != b - a:
+                mark = np.zeros(b - a + 1, dtype=np.int64)
+                np.add.at(mark, starts[i:j] - a, 1)
+                np.add.at(mark, stops[i:j] - a, -1)
+                keep = np.cumsum(mark[:-1]) > 0
+            for name, ds in dsets.items():
+                arr = _read_span(ds, a, b)
+                parts[name].append(arr if keep is None else arr[keep])
+            got = parts["forest_id"][-1]
+            want = np.repeat(fids[i:j], stops[i:j] - starts[i:j])
+            if got.shape != want.shape or np.any(np.asarray(got) != want):
+                raise self._bad_index(f"rows {a}..{b - 1} do not all belong to the forests "
+                                      f"the index names")
+            if want_rows:
+                r = np.arange(a, b, dtype=np.int64)
+                row_parts.append(r if keep is None else r[keep])
+        return parts, row_parts
+
+    def _read_scan(self, dsets, pos, want_rows):
+        """Rows of forests scattered through the file: stream it, keep their rows."""
+        member = np.zeros(self.n_forests, dtype=bool)
+        member[pos] = True
+        parts = {name: [] for name in dsets}
+        row_parts = []
+        for a, b in _blocks(self.n_nodes):
+            fid_raw = _read_span(dsets["forest_id"], a, b)
+            keep = member[np.searchsorted(self.forest_ids, np.asarray(fid_raw).astype(np.int64))]
+            if not keep.any():
+                continue
+            for name, ds in dsets.items():
+                arr = fid_raw if name == "forest_id" else _read_span(ds, a, b)
+                parts[name].append(arr[keep])
+            if want_rows:
+                row_parts.append(np.arange(a, b, dtype=np.int64)[keep])
+        return parts, row_parts
+
+    def select_forests(self, ids) -> Forest:
+        """The :class:`Forest` of the forests ``ids`` (whole forests), read from the file.
+
+        The same forest, bit for bit, as ``load_forest(path).select_forests(ids)``. Checked
+        by the validation rules unless the whole file has passed :meth:`check`.
+        """
+        ids = np.unique(np.asarray(ids, dtype=np.int64))
+        cols = self.read_columns(ids)
+        weights = None
+        if self._weight_table is not None:
+            weights = {"forest_id": ids,
+                       "weight_mpc3": self.forest_weight[self._positions(ids)]}
+        return Forest.from_columns(cols, self._snap_raw, self._z_raw, box_mpc=self.box_mpc,
+                                   forest_weight=weights, meta=dict(self.meta),
+                                   source=self.source, check=not self.checked)
+
+    def in_file_order(self, ids) -> np.ndarray:
+        """The forest ids ``ids`` in the order their rows come in the file (by id if the
+        rows are not grouped by forest)."""
+        ids = np.unique(np.asarray(ids, dtype=np.int64))
+        if not self.grouped:
+            return ids
+        return ids[np.argsort(self._start[self._positions(ids)], kind="stable")]
+
+    # ------------------------------------------------------------ validation
+    def _file_order(self) -> np.ndarray:
+        """Forest positions in the order their rows come in the file (ids if scattered)."""
+        if self.grouped:
+            return np.argsort(self._start, kind="stable")
+        return np.arange(self.n_forests)
+
+    def check(self, max_nodes: int = 2_000_000) -> "HDF5Forests":
+        """Check the whole file against every validation rule, chunk by chunk.
+
+        Forests are read in file order in chunks of at most ``max_nodes`` nodes (a larger
+        forest alone) and checked as they are read; repeated node ids and descendants in
+        other chunks are then found by streaming the ``node_id`` column
+        (:class:`~bhgrow.trees.validate.ChunkedCheck`). Memory: one chunk.
+
+        Raises
+        ------
+        BhgrowInputError
+            Listing every broken rule as :func:`load_forest` would, with file rows.
+        """
+        if isinstance(max_nodes, bool) or int(max_nodes) != max_nodes or max_nodes < 1:
+            raise BhgrowInputError(f"`max_nodes` of HDF5Forests.check must be an integer >= 1;"
+                                   f" got {max_nodes!r}")
+        chk = ChunkedCheck(self._snap_raw, self._z_raw)
+        order = self._file_order()
+        sizes = self._counts[order]
+        start = 0
+        while start < order.size:
+            total = np.cumsum(sizes[start:])
+            stop = start + max(1, int(np.searchsorted(total, max_nodes, side="right")))
+            cols, rows = self.read_columns(self.forest_ids[order[start:stop]], rows=True)
+            chk.add_chunk(cols, rows)
+            del cols, rows
+            start = stop
+        if chk.id_columns_ok():
+            # ids held at once: a chunk, or a read block if more
+            budget = max(int(max_nodes), int(READ_BLOCK_ROWS))
+            chk.set_duplicates(self._duplicate_node_ids(budget))
+            outside = chk.outside_descendants()
+            if outside.size:
+                chk.resolve(*self._lookup_nodes(outside))
+        problems = chk.problems()
+        if problems:
+            raise_problems(problems, self.source)
+        self.forest_weight, self.box_mpc    # noqa: B018 - weight table and box errors now
+        self.checked = True
+        return self
+
+    def _node_blocks(self, with_snap: bool = False):
+        with self._h5() as h5:
+            ids_ds, snap_ds = h5["nodes/node_id"], h5["nodes/snap"]
+            for a, b in _blocks(self.n_nodes):
+                ids = np.asarray(_read_span(ids_ds, a, b)).astype(np.int64)
+                snap = (np.asarray(_read_span(snap_ds, a, b)).astype(np.int64) if with_snap
+                        else None)
+                yield ids, snap
+
+    def _duplicate_node_ids(self, budget: int) -> np.ndarray:
+        """Node ids occurring more than once in the file (sorted), holding <= ~budget ids.
+
+        Ids are split into value ranges of at most ``budget`` ids (from a histogram of the
+        column), and each range is collected by one streaming pass and sorted.
+        """
+        def dups(ids):
+            ids.sort()
+            rep = ids[1:][ids[1:] == ids[:-1]]
+            return np.unique(rep)
+
+        if self.n_nodes <= budget:
+            return dups(np.concatenate([ids for ids, _ in self._node_blocks()]))
+        lo, hi = None, None
+        for ids, _ in self._node_blocks():
+            lo = int(ids.min()) if lo is None else min(lo, int(ids.min()))
+            hi = int(ids.max()) if hi is None else max(hi, int(ids.max()))
+        n_bins = int(min(1 << 20, max(1024, 64 * -(-self.n_nodes // budget))))
+        width = np.uint64((hi - lo) // n_bins + 1)
+        base = np.uint64(lo % (1 << 64))
+
+        def bins(ids):   # exact in uint64 arithmetic (wraps modulo 2**64 like lo did)
+            return ((ids.astype(np.uint64) - base) // width).astype(np.int64)
+
+        hist = np.zeros(n_bins, dtype=np.int64)
+        for ids, _ in self._node_blocks():
+            hist += np.bincount(bins(ids), minlength=n_bins)
+        cum = np.cumsum(hist)
+        found, first = [], 0
+        while first < n_bins:
+            before = int(cum[first - 1]) if first else 0
+            last = max(first + 1, int(np.searchsorted(cum, before + budget, side="right")))
+            sel = [ids[(k >= first) & (k < last)] for ids, _ in self._node_blocks()
+                   for k in (bins(ids),)]
+            found.append(dups(np.concatenate(sel)))
+            first = last
+        return np.concatenate(found)
+
+    def _lookup_nodes(self, wanted: np.ndarray):
+        """Which of the sorted ids ``wanted`` are node ids of the file, and their snaps."""
+        got_ids, got_snap = [], []
+        for ids, snap in self._node_blocks(with_snap=True):
+            pos = np.minimum(np.searchsorted(wanted, ids), wanted.size - 1)
+            hit = wanted[pos] == ids
+            got_ids.append(ids[hit])
+            got_snap.append(snap[hit])
+        return np.concatenate(got_ids), np.concatenate(got_snap)
+
+
+def open_forests(path, *, check: bool = True, max_nodes: int = 2_000_000,
+                 box_mpc: float | None = None) -> HDF5Forests:
+    """Open a bhgrow HDF5 forest file for reading chunk by chunk.
+
+    Parameters
+    ----------
+    path : str or Path
+    check : bool
+        Check the whole file now (:meth:`HDF5Forests.check`, in chunks of ``max_nodes``
+        nodes): bad input fails here, with the messages of :func:`load_forest`.
+    max_nodes : int
+        Nodes per chunk of the check (bounds its memory).
+    box_mpc : float, optional
+        Comoving box side [Mpc] replacing the file's.
+
+    Returns
+    -------
+    HDF5Forests
+    """
+    source = HDF5Forests(path, box_mpc=box_mpc)
+    if check:
+        source.check(max_nodes)
+    return source
+
+
+def is_hdf5_path(path) -> bool:
+    """Whether :func:`load_forest` reads ``path`` as bhgrow HDF5 (by its suffix)."""
+    return Path(path).suffix.lower() in (".h5", ".hdf5", ".hdf")
 
 
 # ====================================================================== tables
@@ -374,7 +914,7 @@ def load_forest(path, *, columns: dict | None = None, h: float | None = None,
     :func:`read_table` (with the column map, ``h`` conversion and snapshot table).
     """
     path = Path(path)
-    if path.suffix.lower() in (".h5", ".hdf5", ".hdf"):
+    if is_hdf5_path(path):
         if columns or h is not None or snapshots is not None:
             raise BhgrowInputError(f"{path}: column maps, --h and --snapshots apply to tables "
                                    f"(CSV/Parquet), not to bhgrow HDF5 files", source=str(path),

@@ -30,6 +30,7 @@ Rules
 
 from __future__ import annotations
 
+import re
 from dataclasses import dataclass
 
 import numpy as np
@@ -79,11 +80,15 @@ def _ids(values, mask) -> tuple:
     return tuple(v.item() if hasattr(v, "item") else v for v in sel)
 
 
-def _coerce_int(name: str, values, problems: list[Problem]):
-    """Return an int64 array, or None (with a ``wrong_dtype`` problem) if not integral."""
+def _coerce_int(name: str, values, problems: list[Problem], row_numbers=None):
+    """Return an int64 array, or None (with a ``wrong_dtype`` problem) if not integral.
+
+    ``row_numbers`` (optional) are the file rows of ``values``, used in messages.
+    """
     arr = np.asarray(values)
+    file_rows = np.arange(arr.size) if row_numbers is None else np.asarray(row_numbers)
     if arr.dtype.kind == "u" and arr.size and arr.max() > np.iinfo(np.int64).max:
-        rows = np.flatnonzero(arr > np.iinfo(np.int64).max)
+        rows = file_rows[arr > np.iinfo(np.int64).max]
         problems.append(Problem("wrong_dtype", f"column `{name}` holds values beyond the "
                                 f"int64 range at rows", _ids(rows, slice(None)), rows.size))
         return None
@@ -95,7 +100,7 @@ def _coerce_int(name: str, values, problems: list[Problem]):
     if arr.dtype.kind == "f":
         bad = ~np.isfinite(arr) | (arr != np.round(arr)) | (np.abs(arr) > 2.0**53)
         if bad.any():
-            rows = np.flatnonzero(bad)
+            rows = file_rows[bad]
             problems.append(Problem(
                 "wrong_dtype",
                 f"column `{name}` must hold integers; non-integer or missing values at rows",
@@ -150,7 +155,40 @@ def check_snapshot_table(snap_nums, snap_z) -> list[Problem]:
     return problems
 
 
-def find_problems(columns: dict, snap_nums, snap_z) -> list[Problem]:
+def layout_problems(shapes: dict) -> list[Problem]:
+    """Rules on the column set and shapes alone (no data needed).
+
+    Parameters
+    ----------
+    shapes : dict of str -> tuple
+        Shape of each node column (bhgrow names), e.g. from HDF5 datasets.
+
+    Returns
+    -------
+    list of Problem
+        ``missing_columns``, ``wrong_layout``, unequal lengths (``wrong_dtype``) or
+        ``empty``; at most one, as the other rules cannot be checked without it.
+    """
+    missing = [c for c in REQUIRED_COLUMNS if c not in shapes]
+    if missing:
+        return [Problem("missing_columns",
+                        "required columns absent: " + ", ".join(f"`{c}`" for c in missing)
+                        + "; present: " + ", ".join(f"`{c}`" for c in shapes))]
+    not_1d = [c for c in shapes if len(shapes[c]) != 1]
+    if not_1d:
+        return [Problem("wrong_layout", "columns must be 1-D arrays; not 1-D: "
+                        + ", ".join(f"`{c}` (shape {tuple(shapes[c])})" for c in not_1d))]
+    lengths = {int(shapes[c][0]) for c in shapes}
+    if len(lengths) != 1:
+        return [Problem("wrong_dtype", "columns differ in length: "
+                        + ", ".join(f"`{c}`={int(shapes[c][0])}" for c in shapes))]
+    if lengths.pop() == 0:
+        return [Problem("empty", "the file holds no tree nodes")]
+    return []
+
+
+def find_problems(columns: dict, snap_nums, snap_z, *, row_numbers=None,
+                  check_snapshots: bool = True, links: dict | None = None) -> list[Problem]:
     """Check node columns against every rule of DESIGN §5.
 
     Parameters
@@ -159,35 +197,33 @@ def find_problems(columns: dict, snap_nums, snap_z) -> list[Problem]:
         Node columns (bhgrow names). Must hold the :data:`REQUIRED_COLUMNS`.
     snap_nums, snap_z : array_like
         The snapshot table: snapshot numbers and their redshifts.
+    row_numbers : array_like of int, optional
+        File row of each node (messages that name rows use them); default ``0 .. n-1``.
+        Used when the columns are one chunk of a larger file.
+    check_snapshots : bool
+        Also check the snapshot table itself (a chunked check does it once).
+    links : dict, optional
+        Filled with ``node_id``, ``desc_id``, ``snap`` and ``row`` of the nodes whose
+        descendant is not among these columns (each an int64 array), so a chunked check can
+        look them up in the rest of the file (:class:`ChunkedCheck`).
 
     Returns
     -------
     list of Problem
         Empty when the forest is valid.
     """
-    missing = [c for c in REQUIRED_COLUMNS if c not in columns]
-    if missing:
-        return [Problem("missing_columns",
-                        "required columns absent: " + ", ".join(f"`{c}`" for c in missing)
-                        + "; present: " + ", ".join(f"`{c}`" for c in columns))]
-    not_1d = [c for c in columns if np.ndim(columns[c]) != 1]
-    if not_1d:
-        return [Problem("wrong_layout", "columns must be 1-D arrays; not 1-D: "
-                        + ", ".join(f"`{c}` (shape {np.shape(columns[c])})" for c in not_1d))]
-    lengths = {len(np.atleast_1d(columns[c])) for c in columns}
-    if len(lengths) != 1:
-        return [Problem("wrong_dtype", "columns differ in length: "
-                        + ", ".join(f"`{c}`={len(np.atleast_1d(columns[c]))}" for c in columns))]
-    if lengths.pop() == 0:
-        return [Problem("empty", "the file holds no tree nodes")]
-
-    problems: list[Problem] = []
-    node = _coerce_int("node_id", columns["node_id"], problems)
-    desc = _coerce_int("desc_id", columns["desc_id"], problems)
-    forest = _coerce_int("forest_id", columns["forest_id"], problems)
-    snap = _coerce_int("snap", columns["snap"], problems)
+    problems = layout_problems({c: np.shape(columns[c]) for c in columns})
+    if problems:
+        return problems
+    file_rows = (np.arange(len(np.atleast_1d(columns["node_id"]))) if row_numbers is None
+                 else np.asarray(row_numbers))
+    node = _coerce_int("node_id", columns["node_id"], problems, file_rows)
+    desc = _coerce_int("desc_id", columns["desc_id"], problems, file_rows)
+    forest = _coerce_int("forest_id", columns["forest_id"], problems, file_rows)
+    snap = _coerce_int("snap", columns["snap"], problems, file_rows)
     mass = _coerce_float("mass_msun", columns["mass_msun"], problems)
-    problems += check_snapshot_table(snap_nums, snap_z)
+    if check_snapshots:
+        problems += check_snapshot_table(snap_nums, snap_z)
     if mass is not None:
         bad = ~np.isfinite(mass) | (mass <= 0)
         if bad.any() and node is not None:
@@ -195,7 +231,7 @@ def find_problems(columns: dict, snap_nums, snap_z) -> list[Problem]:
                                     _ids(node, bad), int(bad.sum())))
         elif bad.any():
             problems.append(Problem("bad_mass", "halo masses must be finite and > 0; bad at rows",
-                                    _ids(np.arange(mass.size), bad), int(bad.sum())))
+                                    _ids(file_rows, bad), int(bad.sum())))
     for name in OPTIONAL_COLUMNS:
         if name not in columns:
             continue
@@ -205,7 +241,7 @@ def find_problems(columns: dict, snap_nums, snap_z) -> list[Problem]:
         bad = ~np.isfinite(arr) | (arr < 0)
         if bad.any():
             rule = "bad_weights" if name == "weight_mpc3" else "bad_optional_values"
-            who = node if node is not None else np.arange(arr.size)
+            who = node if node is not None else file_rows
             problems.append(Problem(rule, f"`{name}` must be finite and >= 0; bad at nodes",
                                     _ids(who, bad), int(bad.sum())))
         elif name == "weight_mpc3" and forest is not None:
@@ -242,6 +278,9 @@ def find_problems(columns: dict, snap_nums, snap_z) -> list[Problem]:
     pos_c = np.minimum(pos, sorted_ids.size - 1)
     found = has_desc & (sorted_ids[pos_c] == desc)
     missing_desc = has_desc & ~found
+    if links is not None:
+        links.update(node_id=node[missing_desc], desc_id=desc[missing_desc],
+                     snap=snap[missing_desc], row=file_rows[missing_desc])
     if missing_desc.any():
         problems.append(Problem(
             "missing_descendants", "descendant ids name no node in the file; nodes",
@@ -300,6 +339,153 @@ def _nodes_on_cycles(desc_idx: np.ndarray) -> np.ndarray:
             break
         nxt[alive] = nxt[nxt[alive]]
     return nxt >= 0
+
+
+# ------------------------------------------------------------------------------------------
+# checking a file in chunks of whole forests
+# ------------------------------------------------------------------------------------------
+#: rules on node / descendant ids, checked only when the four id columns are integers
+_ID_RULES = ("negative_ids", "duplicate_ids", "unknown_snapshots", "missing_descendants",
+             "descendant_not_later", "cycles", "cross_forest_links")
+
+
+def _column_of(p: Problem) -> str:
+    """The first `column` a problem's message names ("" if none)."""
+    m = re.search(r"`([^`]+)`", p.message)
+    return m.group(1) if m else ""
+
+
+def _rank(p: Problem) -> int:
+    """Position of a problem in :func:`find_problems`'s own reporting order."""
+    col = _column_of(p)
+    required, optional = list(REQUIRED_COLUMNS), list(OPTIONAL_COLUMNS)
+    if p.rule == "wrong_dtype" and col in required:
+        return required.index(col)
+    if p.rule in ("wrong_dtype", "bad_snapshot_table") and (
+            p.rule == "bad_snapshot_table" or col.startswith("snapshots/")):
+        return len(required)
+    if p.rule == "bad_mass":
+        return len(required) + 1
+    if col in optional and p.rule in ("wrong_dtype", "bad_weights", "bad_optional_values"):
+        return 10 + 2 * optional.index(col) + (p.rule != "wrong_dtype")
+    if p.rule in _ID_RULES:
+        return 30 + _ID_RULES.index(p.rule)
+    return 50
+
+
+class ChunkedCheck:
+    """The rules of :func:`find_problems` for a file read in chunks of whole forests.
+
+    Every chunk is checked with :func:`find_problems` as it is read (:meth:`add_chunk`).
+    Two rules reach across forests and are completed over the whole file by the reader:
+
+    * node ids unique across the file: the reader finds the repeated ids by streaming the
+      ``node_id`` column and hands them to :meth:`set_duplicates`;
+    * a descendant outside its chunk: :meth:`outside_descendants` lists the ids to look
+      up, and :meth:`resolve` takes the ids found in the file with their snapshots; found
+      ones are ``cross_forest_links`` (and ``descendant_not_later`` if not later), the rest
+      ``missing_descendants``.
+
+    :meth:`problems` then merges the chunks' problems rule by rule (ids in chunk order,
+    counts summed), in the order :func:`find_problems` reports them, so a file checked in
+    chunks gives the same error lines as the whole file checked at once. Two differences
+    remain in files that break several rules at once: descendant chains that loop through
+    other forests are reported as cross-forest links (not also as cycles), and a descendant
+    id naming several nodes (``duplicate_ids``) is resolved within its chunk, so the rules
+    that follow from it may name other nodes.
+
+    Parameters
+    ----------
+    snap_nums, snap_z : array_like
+        The file's snapshot table (checked once, here).
+    """
+
+    def __init__(self, snap_nums, snap_z):
+        self.snap_nums, self.snap_z = snap_nums, snap_z
+        self._chunks: list[list[Problem]] = [check_snapshot_table(snap_nums, snap_z)]
+        self._links: list[dict] = [{}]
+        self._duplicates: np.ndarray | None = None
+        self._found: tuple | None = None
+
+    def add_chunk(self, columns: dict, row_numbers=None) -> None:
+        """Check one chunk of whole forests (``row_numbers``: their file rows)."""
+        links: dict = {}
+        found = find_problems(columns, self.snap_nums, self.snap_z, row_numbers=row_numbers,
+                              check_snapshots=False, links=links)
+        self._chunks.append([p for p in found
+                             if p.rule not in ("duplicate_ids", "missing_descendants")])
+        self._links.append(links)
+
+    def id_columns_ok(self) -> bool:
+        """False if an id column is not integral (the id rules are then not checked)."""
+        ids = ("node_id", "desc_id", "forest_id", "snap")
+        return not any(p.rule == "wrong_dtype" and _column_of(p) in ids
+                       for ps in self._chunks for p in ps)
+
+    def outside_descendants(self) -> np.ndarray:
+        """Sorted unique descendant ids not found in their own chunk (to look up)."""
+        parts = [d["desc_id"] for d in self._links if d.get("desc_id") is not None]
+        return np.unique(np.concatenate(parts)) if parts else np.zeros(0, np.int64)
+
+    def resolve(self, found_ids, found_snap) -> None:
+        """Ids of :meth:`outside_descendants` present in the file, and their snapshots."""
+        o = np.argsort(found_ids, kind="stable")
+        self._found = (np.asarray(found_ids, np.int64)[o], np.asarray(found_snap, np.int64)[o])
+
+    def set_duplicates(self, ids) -> None:
+        """Node ids that occur more than once in the whole file (sorted, unique)."""
+        self._duplicates = np.asarray(ids, dtype=np.int64)
+
+    def problems(self) -> list[Problem]:
+        """Every broken rule of the file, merged over chunks (empty when valid)."""
+        found_ids, found_snap = self._found if self._found is not None else (
+            np.zeros(0, np.int64), np.zeros(0, np.int64))
+        lists = []
+        for chunk, links in zip(self._chunks, self._links):
+            extra = []
+            if links.get("desc_id") is not None and links["desc_id"].size:
+                d, node = links["desc_id"], links["node_id"]
+                pos = np.minimum(np.searchsorted(found_ids, d), max(found_ids.size - 1, 0))
+                hit = (found_ids[pos] == d) if found_ids.size else np.zeros(d.size, bool)
+                if (~hit).any():
+                    extra.append(Problem("missing_descendants",
+                                         "descendant ids name no node in the file; nodes",
+                                         _ids(node, ~hit), int((~hit).sum())))
+                if hit.any():
+                    late = hit.copy()
+                    late[hit] = found_snap[pos[hit]] <= links["snap"][hit]
+                    if late.any():
+                        extra.append(Problem(
+                            "descendant_not_later",
+                            "descendant is not at a later snapshot than its progenitor; nodes",
+                            _ids(node, late), int(late.sum())))
+                    extra.append(Problem("cross_forest_links",
+                                         "node and descendant carry different forest_id; nodes",
+                                         _ids(node, hit), int(hit.sum())))
+            lists.append(chunk + extra)
+        if self._duplicates is not None and self._duplicates.size:
+            lists.append([Problem("duplicate_ids", "node ids occur more than once",
+                                  _ids(self._duplicates, slice(None)),
+                                  int(self._duplicates.size))])
+        out = merge_problems(lists)
+        if any(p.rule == "unknown_snapshots" for p in out):   # as in find_problems
+            out = [p for p in out if p.rule != "descendant_not_later"]
+        if not self.id_columns_ok():
+            out = [p for p in out if p.rule not in _ID_RULES]
+        return sorted(out, key=_rank)                           # stable: chunk order kept
+
+
+def merge_problems(lists) -> list[Problem]:
+    """Merge problem lists of consecutive chunks: one problem per (rule, message), its ids
+    in chunk order (the first :data:`MAX_SHOWN`) and its count summed."""
+    merged: dict = {}
+    for problems in lists:
+        for p in problems:
+            entry = merged.setdefault((p.rule, p.message), [p.rule, p.message, [], 0])
+            entry[2].extend(p.ids[:max(0, MAX_SHOWN - len(entry[2]))])
+            entry[3] += p.count
+    return [Problem(rule, message, tuple(ids), count)
+            for rule, message, ids, count in merged.values()]
 
 
 def validate(columns: dict, snap_nums, snap_z, *, source: str = "<memory>") -> None:
