@@ -27,9 +27,10 @@ is not additive over chunks: every chunk pays a fixed part per snapshot), and th
 speed-up** = serial CPU time / that makespan -- what the plan gives on an idle machine.
 
 For each: wall time (including the worker pool's start-up and the return of the results),
-utilisation ``U = sum(busy) / (wall x workers)`` with ``busy`` = ``EngineResult.wall_s`` of
-each chunk (the engine's own time in a worker; selecting the sub-forest and shipping the
-result back count as idle, so U is slightly pessimistic), and the speed-up over run 1. The
+utilisation ``U = sum(busy) / (wall x workers)`` with ``busy`` = ``EngineResult.chunk_s`` of
+each chunk (the whole task in its worker: selecting or reading the forests, the engine,
+packing the result; starting the pool and shipping results back count as idle), and the
+speed-up over run 1. The
 cluster forest alone is also run (``run_forest`` on it, CPU time), to show its cost share
 against its node share. Target: U >= 85% with 2 workers. Parallel timings need an otherwise idle
 machine: the load average is printed first.
@@ -109,7 +110,7 @@ def run_parallel(forest, plan, cfg, cosmo, workers: int) -> dict:
     t0 = time.perf_counter()
     res = run_chunks(forest, plan, cfg.model, cfg.run, cosmo, workers=workers)
     wall = time.perf_counter() - t0
-    busy = np.array([r.wall_s for r in res])
+    busy = np.array([r.chunk_s or r.wall_s for r in res])
     return {"wall": wall, "busy": busy, "util": float(busy.sum() / (wall * workers)),
             "makespan": greedy_makespan(busy, workers),
             "n_bh": sum(len(r.black_holes) for r in res)}

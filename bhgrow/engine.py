@@ -131,6 +131,8 @@ class EngineResult:
     n_seeds: dict
     wall_s: float
     mergers: dict = field(default_factory=dict)
+    #: whole chunk in its worker: reading/selecting the forests, engine, packing (s)
+    chunk_s: float = 0.0
 
 
 def run_forest(forest: Forest, model: Model, run: RunSettings,

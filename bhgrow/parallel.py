@@ -427,7 +427,9 @@ def _sub_forest(forest, ids):
 def run_one_chunk(forest, ids, model, run, cosmo):
     """Run the engine on the forests ``ids`` of ``forest`` (a Forest, or an HDF5Forests
     to read them from); a compact EngineResult."""
-    return compact_result(engine.run_forest(_sub_forest(forest, ids), model, run, cosmo))
+    t0 = time.perf_counter()
+    res = compact_result(engine.run_forest(_sub_forest(forest, ids), model, run, cosmo))
+    return replace(res, chunk_s=time.perf_counter() - t0)
 
 
 _WORKER: dict = {}
@@ -455,7 +457,7 @@ def _worker_chunk(index: int, ids):
 
 
 def _dask_chunk(index: int, sub, model, run, cosmo):
-    return index, compact_result(engine.run_forest(sub, model, run, cosmo))
+    return index, run_one_chunk(sub, sub.forest_ids, model, run, cosmo)
 
 
 def default_start_method() -> str:
