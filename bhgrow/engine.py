@@ -17,10 +17,11 @@ Per snapshot slice
 1. halo properties; new halos get their initial gas;
 2. seeding (halos without a central black hole; channels in config order);
 3. reservoir and black holes over ``dt``: halos without a central black hole take one exact
-   closed-form reservoir step; halos with one take ``n`` substeps (from the fastest
-   gas / Bondi / Eddington time-scale of the slice, capped by ``run.max_substeps``), each:
-   reservoir step -> zone density and sound speed (frozen) -> closed-form Bondi/Eddington
-   growth capped by the reservoir -> feedback removes gas -> spin update;
+   closed-form reservoir step (:meth:`bhgrow.physics.gas.StarFormation.step`); halos with
+   one are solved with their hole, piecewise in closed form
+   (:func:`bhgrow.physics.coupled.advance`: exact Eddington phases, Bondi phases with the
+   hole frozen at its geometric-mean mass, at most ``dt / n_i`` long with ``n_i`` from
+   :func:`bhgrow.physics.coupled.substeps`); the spin is updated once per interval;
 4. state passes to descendants: gas, stars and metals add up (``np.add.at``), the
    "polluted" flag (a progenitor formed stars or held a black hole) propagates with a
    maximum; gas above the descendant's baryon share is removed and recorded.
@@ -51,8 +52,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from . import pairs, rng
-from .config import Config, Model, RunSettings
-from .constants import T_EDD_GYR
+from .config import Model, RunSettings
 from .cosmology import Cosmology
 from .physics import accretion as acc
 from .physics import coupled as cp

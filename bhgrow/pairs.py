@@ -100,7 +100,7 @@ def coalesce(bh, sl, t_now, k, gas, stars, v_esc, mass_h, forest, model, run, co
 
     Returns a list of event dicts of arrays (one dict per rank of events within a host).
     """
-    from .engine import CENTRAL, EJECTED, EJECTED_TRIPLE, MERGED, SINKING
+    from .engine import CENTRAL, EJECTED_TRIPLE, SINKING
 
     events = []
     live = (bh.host >= sl.start) & (bh.host < sl.stop)

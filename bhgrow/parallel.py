@@ -46,7 +46,7 @@ import shutil
 import sys
 import threading
 import time
-from dataclasses import dataclass, replace
+from dataclasses import replace
 from pathlib import Path
 
 import numpy as np

@@ -34,7 +34,6 @@ All writers are atomic: they write ``<name>.tmp-<pid>`` and rename it into place
 
 from __future__ import annotations
 
-import hashlib
 import json
 import os
 from pathlib import Path
