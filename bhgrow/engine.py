@@ -368,7 +368,19 @@ def _grow(model, run, bh, cbh, rows, sl, active, gas, stars, metals, outflow, in
         g, z, m, taken, formed = r.gas, r.metals, r.m_bh, r.accreted, r.stars_formed
         out = r.wind + r.feedback
     else:
-        # the coefficient depends on the gas: re-evaluated at every step's start
+        # the coefficient depends on the gas: re-evaluated at every step's start, with steps
+        # that also bound its change over the interval (estimated from the gas the
+        # reservoir moves to without the hole)
+        x = loss * h_total
+        g_end = g0 * np.exp(-x) + I * h_total * np.where(x > 1e-8, -np.expm1(-x) / np.where(
+            x > 1e-8, x, 1.0), 1.0)
+        ge = np.where(g_end > 0, g_end, g_ref)
+        b_end = np.asarray(model.accretion.coefficient(rho_1 * ge, cs, 0.0), dtype=float) / ge
+        with np.errstate(divide="ignore", invalid="ignore"):
+            dlnb = np.abs(np.log(b_end / bondi))
+        dlnb = np.where(np.isfinite(dlnb), dlnb, 0.0)
+        n_sub = np.clip(np.maximum(n_sub, np.ceil(dlnb / run.substep_dlnm)), 1,
+                        run.max_substeps)
         g, z, m = g0.copy(), metals[hrow].copy(), m_start.copy()
         taken, formed, out = np.zeros(cbh.size), np.zeros(cbh.size), np.zeros(cbh.size)
         h = h_total / n_sub

@@ -176,3 +176,25 @@ def test_ledger_under_random_trees(seed, n, p_split, feedback, recoil, df_scale)
     r = run_model(f, cfg)
     assert r.ledger["ok"], r.ledger["max_relative_residual"]
     assert r.baryons["ok"]
+
+
+def test_density_dependent_accretion_law_runs_and_converges():
+    # the Booth & Schaye (2009) boost depends on the gas density, so the engine re-evaluates
+    # its coefficient at every substep (a separate path from the constant-boost law):
+    # the ledger must balance and the result must converge with the substep
+    from bhgrow.trees.toy import toy_forest
+
+    f = toy_forest(40, seed=11, n_snap=20, box_mpc=20.0, log_mass_range=(11.0, 13.0))
+    table = {"accretion": {"law": "booth_schaye"}, "run": {"histories": False}}
+    base = run_model(f, from_table(table))
+    fine = run_model(f, from_table({**table, "run": {"histories": False,
+                                                     "substep_dlnm": 0.05,
+                                                     "max_substeps": 1024}}))
+    assert base.ledger["ok"] and fine.ledger["ok"]
+    assert base.baryons["ok"] and fine.baryons["ok"]
+    a = np.asarray(base.black_holes["final_mass_msun"], dtype=float)
+    b = np.asarray(fine.black_holes["final_mass_msun"], dtype=float)
+    assert np.all(a > 0) and a.size == b.size
+    # the total converges (measured: 1.9% between the default and a ten-fold finer step);
+    # single holes near a Bondi runaway under the density-squared boost stay step-sensitive
+    assert abs(b.sum() / a.sum() - 1) < 3e-2
