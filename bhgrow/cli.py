@@ -171,7 +171,15 @@ def _load(args):
 
 
 def _cmd_trees_check(args) -> int:
-    forest = _load(args)
+    from .trees.io import is_hdf5_path, open_forests
+
+    if is_hdf5_path(args.file) and not args.columns and args.h is None \
+            and args.snapshots is None:
+        # a bhgrow HDF5 file is checked chunk by chunk: memory follows the chunk, not the file
+        forest = open_forests(args.file, box_mpc=args.box_mpc, check=False)
+        forest.check()
+    else:
+        forest = _load(args)
     print(f"{args.file}: OK — {forest.n_forests} forests, {forest.n_nodes} nodes, "
           f"{len(forest.snapshots)} snapshots")
     return EXIT_OK

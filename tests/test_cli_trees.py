@@ -197,6 +197,7 @@ def test_internal_failure_exits_1_without_traceback(tmp_path, capsys, monkeypatc
         raise RuntimeError("simulated fault")
 
     monkeypatch.setattr(io, "load_forest", boom)
+    monkeypatch.setattr(io, "open_forests", boom)     # HDF5 files are checked lazily
     code, _, err = run(capsys, "trees", "check", DEMO)
     assert code == 1
     assert "simulated fault" in err and "Traceback" not in err
