@@ -371,9 +371,8 @@ def _grow(model, run, bh, cbh, rows, sl, active, gas, stars, metals, outflow, in
         # the coefficient depends on the gas: re-evaluated at every step's start, with steps
         # that also bound its change over the interval (estimated from the gas the
         # reservoir moves to without the hole)
-        x = loss * h_total
-        g_end = g0 * np.exp(-x) + I * h_total * np.where(x > 1e-8, -np.expm1(-x) / np.where(
-            x > 1e-8, x, 1.0), 1.0)
+        zero = np.zeros(cbh.size)
+        g_end = model.star_formation.step(g0, zero, zero, I, t_dyn[hl], v_c[hl], h_total).gas
         ge = np.where(g_end > 0, g_end, g_ref)
         b_end = np.asarray(model.accretion.coefficient(rho_1 * ge, cs, 0.0), dtype=float) / ge
         with np.errstate(divide="ignore", invalid="ignore"):
