@@ -47,6 +47,8 @@ References
 .. [K03] King A., 2003, ApJ, 596, L27
 .. [T80] Tinsley B. M., 1980, Fund. Cosmic Phys., 5, 287
 .. [HO10] Hochbruck M., Ostermann A., 2010, Acta Numerica, 19, 209 (phi-functions)
+.. [P07] Press W. H., Teukolsky S. A., Vetterling W. T., Flannery B. P., 2007, Numerical
+   Recipes, 3rd edn, Cambridge Univ. Press, sect. 9.4 (safeguarded Newton, rtsafe)
 
 Journal references from memory.
 """
@@ -62,8 +64,8 @@ __all__ = ["Coefficients", "IntervalResult", "advance", "substeps"]
 #: phases per halo, beyond two per Bondi step, before the remaining time is taken in one
 #: Bondi phase regardless of further switches (capped at Eddington-limited growth)
 _MAX_PHASES = 6
-#: most safeguarded Newton iterations for a phase switch (usually 2-4 suffice; a switch
-#: very early in a step of a fast reservoir takes ~log2(dt / t_switch) more)
+#: most safeguarded Newton iterations for a phase switch (usually 2-4 suffice; each
+#: bisection fallback halves the bracket)
 _ROOT_ITERS = 60
 _SERIES_X = 0.05
 #: a reservoir feeding at least (1 - _EDD_TOL) of the Eddington rate counts as Eddington-fed:
@@ -133,16 +135,41 @@ def _small(x, out, series):
 
 # Above x = 0.05 the forms with exp() lose at most ~1e-13 to cancellation; below it the
 # 7-term Taylor series is exact to < 1e-15. (numpy's expm1 is ~20x slower than exp.)
+def _series_phi1(v):
+    return 1.0 + v * (-1.0 / 2 + v * (1.0 / 6 + v * (-1.0 / 24 + v * (1.0 / 120 + v * (
+        -1.0 / 720 + v / 5040)))))
+
+
+def _series_phi2(v):
+    return 0.5 + v * (-1.0 / 6 + v * (1.0 / 24 + v * (-1.0 / 120 + v * (1.0 / 720 + v * (
+        -1.0 / 5040 + v / 40320)))))
+
+
 def _phi1(x):
     """``(1 - e^-x) / x`` (1 at 0)."""
-    return _small(x, (1.0 - np.exp(-x)) / x, lambda v: 1.0 + v * (-1.0 / 2 + v * (
-        1.0 / 6 + v * (-1.0 / 24 + v * (1.0 / 120 + v * (-1.0 / 720 + v / 5040))))))
+    return _small(x, (1.0 - np.exp(-x)) / x, _series_phi1)
 
 
 def _phi2(x):
     """``(x - 1 + e^-x) / x^2`` (1/2 at 0)."""
-    return _small(x, (x - 1.0 + np.exp(-x)) / (x * x), lambda v: 0.5 + v * (-1.0 / 6 + v * (
-        1.0 / 24 + v * (-1.0 / 120 + v * (1.0 / 720 + v * (-1.0 / 5040 + v / 40320))))))
+    return _small(x, (x - 1.0 + np.exp(-x)) / (x * x), _series_phi2)
+
+
+def _exp_phi12(x):
+    """``e^-x``, ``phi1(x)`` and ``phi2(x)`` from one exponential (``x >= 0``).
+
+    ``phi2 = (1 - phi1) / x`` loses ~1e-13 to cancellation at ``x = 0.05``, as the direct
+    form does; below that both phi-functions take their series.
+    """
+    e = np.exp(-x)
+    f1 = (1.0 - e) / x
+    f2 = (1.0 - f1) / x
+    small = np.abs(x) < _SERIES_X
+    if small.any():
+        xs = x[small]
+        f1[small] = _series_phi1(xs)
+        f2[small] = _series_phi2(xs)
+    return e, f1, f2
 
 
 def _psi(x):
@@ -164,11 +191,12 @@ def _eddington_state(g0, m0, c: Coefficients, t):
     """Gas and hole mass after ``t`` of an Eddington phase (exact), and ``phi1(a t)``."""
     a, b = c.loss, c.keep * c.edd
     at = a * t
-    f1a = _phi1(at)
+    e_at = np.exp(-at)
+    f1a = _small(at, (1.0 - e_at) / at, _series_phi1)
     ebt = np.exp(b * t)
     # variation of constants for dg/dt = I - a g - P e M_0 e^{bt}: the forcing integrates
     # to t e^{bt} phi1((a + b) t)
-    g = (g0 * np.exp(-at) + c.inflow * t * f1a
+    g = (g0 * e_at + c.inflow * t * f1a
          - c.per_unit * c.edd * m0 * t * ebt * _phi1(at + b * t))
     return g, m0 * ebt, f1a
 
@@ -198,10 +226,9 @@ def _bondi_phase(g0, m0, c: Coefficients, t, mbar):
     """Gas, its integral and the gas accreted over ``t`` with the hole frozen at ``mbar``."""
     cc = c.bondi_per_gas * mbar * mbar
     lam = c.loss + c.per_unit * cc
-    x = lam * t
-    f1 = _phi1(x)
-    g = g0 * np.exp(-x) + c.inflow * t * f1
-    gi = g0 * t * f1 + c.inflow * t * t * _phi2(x)
+    e, f1, f2 = _exp_phi12(lam * t)
+    g = g0 * e + c.inflow * t * f1
+    gi = g0 * t * f1 + c.inflow * t * t * f2
     return g, gi, cc * gi, lam
 
 
@@ -223,40 +250,34 @@ def _newton(fdf, lo, hi):
     """Root of a decreasing ``f`` bracketed by ``f(lo) >= 0 > f(hi)`` (vectorized).
 
     ``fdf(s, i)`` returns ``(f, f', band)`` at ``s`` for the elements ``i`` (an index array,
-    or None for all); a point with ``0 <= f <= band`` is accepted. Safeguarded Newton from
-    the ``lo`` end (the switch functions here are convex near a fast reservoir's
-    transient, where Newton from ``lo`` cannot overshoot); a step that leaves the bracket
-    is replaced by the secant of the bracket. Accepted points stay put and leave the
-    iteration, so each root depends on its own halo only (results must not depend on which
-    halos share a chunk). At most :data:`_ROOT_ITERS` iterations. Returns the accepted
-    points, else the last point known to have ``f >= 0``.
+    or None for all); a point with ``0 <= f <= band`` is accepted. Safeguarded Newton
+    (rtsafe, Press et al. 2007, sect. 9.4) from the ``lo`` end, each step aimed at the
+    middle of the acceptance band, so a converging iterate lands inside it rather than just
+    outside on either side; a step that leaves the bracket (or a slope that is not
+    negative, near a maximum of ``f``) is replaced by bisection of the bracket. Accepted
+    points stay put and leave the iteration, so each root depends on its own halo only
+    (results must not depend on which halos share a chunk). At most :data:`_ROOT_ITERS`
+    iterations. Returns the accepted points, else the last point known to have ``f >= 0``.
     """
-    f_lo, df_lo, _ = fdf(lo, None)
-    f_hi = fdf(hi, None)[0]
-    nxt = lo - f_lo / df_lo
-    w = f_lo / (f_lo - f_hi)
-    sec = lo + np.clip(np.where(np.isfinite(w), w, 0.5), 1e-6, 1.0 - 1e-6) * (hi - lo)
-    s = np.where((nxt > lo) & (nxt < hi), nxt, sec)
+    f, df, band = fdf(lo, None)
+    s = lo
     out = lo.copy()
-    act = np.arange(s.size)                 # elements still iterating
+    act = np.arange(lo.size)                # elements still iterating
     for _ in range(_ROOT_ITERS):
+        nxt = s - (f - 0.5 * band) / df
+        s = np.where((nxt > lo) & (nxt < hi), nxt, 0.5 * (lo + hi))
         f, df, band = fdf(s, act if act.size < out.size else None)
         up = f >= 0.0
         ok = up & (f <= band)
         out[act[ok]] = s[ok]
-        keep = ~ok
-        if not keep.any():
+        keep = np.flatnonzero(~ok)
+        if not keep.size:
             return out
-        act, s, f, df, up = act[keep], s[keep], f[keep], df[keep], up[keep]
-        lo, hi, f_lo, f_hi = lo[keep], hi[keep], f_lo[keep], f_hi[keep]
+        if keep.size < ok.size:
+            act, s, f, df, band, up = act[keep], s[keep], f[keep], df[keep], band[keep], up[keep]
+            lo, hi = lo[keep], hi[keep]
         lo = np.where(up, s, lo)
-        f_lo = np.where(up, f, f_lo)
         hi = np.where(up, hi, s)
-        f_hi = np.where(up, f_hi, f)
-        nxt = s - f / df
-        w = f_lo / (f_lo - f_hi)
-        sec = lo + np.clip(np.where(np.isfinite(w), w, 0.5), 0.01, 0.99) * (hi - lo)
-        s = np.where((nxt > lo) & (nxt < hi), nxt, sec)
     out[act] = lo
     return out
 
