@@ -246,36 +246,39 @@ def _bondi_switch_time(g0, c: Coefficients, mbar, t):
     return np.where(rises | lin, np.clip(ts, 0.0, t), t)
 
 
-def _newton(fdf, lo, hi):
+def _newton(fdf, lo, hi, args):
     """Root of a decreasing ``f`` bracketed by ``f(lo) >= 0 > f(hi)`` (vectorized).
 
-    ``fdf(s, i)`` returns ``(f, f', band)`` at ``s`` for the elements ``i`` (an index array,
-    or None for all); a point with ``0 <= f <= band`` is accepted. Safeguarded Newton
-    (rtsafe, Press et al. 2007, sect. 9.4) from the ``lo`` end, each step aimed at the
-    middle of the acceptance band, so a converging iterate lands inside it rather than just
-    outside on either side; a step that leaves the bracket (or a slope that is not
-    negative, near a maximum of ``f``) is replaced by bisection of the bracket. Accepted
-    points stay put and leave the iteration, so each root depends on its own halo only
-    (results must not depend on which halos share a chunk). At most :data:`_ROOT_ITERS`
-    iterations. Returns the accepted points, else the last point known to have ``f >= 0``.
+    ``fdf(s, *args)`` returns ``(f, f', band)`` at ``s`` (``args``: per-element arrays,
+    compacted here as elements finish); a point with ``0 <= f <= band`` is accepted.
+    Safeguarded Newton (rtsafe, Press et al. 2007, sect. 9.4) from the ``lo`` end, each
+    step aimed at the middle of the acceptance band, so a converging iterate lands inside it
+    rather than just outside on either side; a step that leaves the bracket (or a slope
+    that is not negative, near a maximum of ``f``) is replaced by bisection of the bracket.
+    Accepted points stay put and leave the iteration, so each root depends on its own halo
+    only (results must not depend on which halos share a chunk). At most
+    :data:`_ROOT_ITERS` iterations. Returns the accepted points, else the last point known
+    to have ``f >= 0``.
     """
-    f, df, band = fdf(lo, None)
+    f, df, band = fdf(lo, *args)
     s = lo
     out = lo.copy()
     act = np.arange(lo.size)                # elements still iterating
     for _ in range(_ROOT_ITERS):
         nxt = s - (f - 0.5 * band) / df
         s = np.where((nxt > lo) & (nxt < hi), nxt, 0.5 * (lo + hi))
-        f, df, band = fdf(s, act if act.size < out.size else None)
+        f, df, band = fdf(s, *args)
         up = f >= 0.0
         ok = up & (f <= band)
-        out[act[ok]] = s[ok]
-        keep = np.flatnonzero(~ok)
-        if not keep.size:
+        if ok.all():
+            out[act] = s
             return out
-        if keep.size < ok.size:
+        if ok.any():
+            out[act[ok]] = s[ok]
+            keep = np.flatnonzero(~ok)
             act, s, f, df, band, up = act[keep], s[keep], f[keep], df[keep], band[keep], up[keep]
             lo, hi = lo[keep], hi[keep]
+            args = tuple(x[keep] for x in args)
         lo = np.where(up, s, lo)
         hi = np.where(up, hi, s)
     out[act] = lo
@@ -292,17 +295,22 @@ def _eddington_end(g0, m0, c: Coefficients, t):
     ``(1 - tol) e / (B M)`` (:data:`_EDD_TOL`), i.e. the reservoir no longer feeds ``e M``."""
     star = (1.0 - _EDD_TOL) * c.edd / (c.bondi_per_gas * m0)   # g* at s = 0
     b = c.keep * c.edd
+    return _newton(_eddington_end_fdf, np.zeros_like(t), t.copy(),
+                   (g0, m0, c.inflow, c.loss, b, c.per_unit * c.edd, star))
 
-    def fdf(s, i):
-        gi0, mi0, ci, st, bi = ((g0, m0, c, star, b) if i is None else
-                                (g0[i], m0[i], c.take(i), star[i], b[i]))
-        g, m, _ = _eddington_state(gi0, mi0, ci, s)
-        gs = st * np.exp(-bi * s)
-        # dg/dt = I - a g - P e M (Eddington phase); d g*/dt = -b g*; accepted where the
-        # rate is within [1 - tol, 1] of Eddington
-        return (g - gs, ci.inflow - ci.loss * g - ci.per_unit * ci.edd * m + bi * gs,
-                _EDD_TOL / (1.0 - _EDD_TOL) * gs)
-    return _newton(fdf, np.zeros_like(t), t.copy())
+
+def _eddington_end_fdf(s, g0, m0, inflow, a, b, pe, star):
+    # the gas of _eddington_state, with M = M_0 e^{bs} and g* = star e^{-bs}
+    at = a * s
+    e_at = np.exp(-at)
+    ebt = np.exp(b * s)
+    g = (g0 * e_at + inflow * s * _small(at, (1.0 - e_at) / at, _series_phi1)
+         - pe * m0 * s * ebt * _phi1(at + b * s))
+    gs = star / ebt
+    # dg/dt = I - a g - P e M (Eddington phase); d g*/dt = -b g*; accepted where the rate
+    # is within [1 - tol, 1] of Eddington
+    return (g - gs, inflow - a * g - pe * m0 * ebt + b * gs,
+            _EDD_TOL / (1.0 - _EDD_TOL) * gs)
 
 
 def _bondi_mass(m0, c: Coefficients, gas_integral):
@@ -325,18 +333,21 @@ def _bondi_runaway(g0, m0, c: Coefficients, t, mbar):
     """Where Bondi growth of the hole lifts ``B g M / e`` to ``1 + tol`` within ``t``."""
     lam = c.loss + c.per_unit * c.bondi_per_gas * mbar * mbar
     e_b = (1.0 + _EDD_TOL) * c.edd / c.bondi_per_gas
+    return _newton(_bondi_runaway_fdf, np.zeros_like(t), t.copy(),
+                   (g0, 1.0 / m0, c.inflow, lam, c.keep * c.bondi_per_gas, e_b))
 
-    def fdf(s, i):
-        gi0, mi0, ci, mb, li, eb = ((g0, m0, c, mbar, lam, e_b) if i is None else
-                                    (g0[i], m0[i], c.take(i), mbar[i], lam[i], e_b[i]))
-        g, gi, _, _ = _bondi_phase(gi0, mi0, ci, s, mb)
-        # g* = e / (B M) with 1/M = 1/M_0 - k B int g (Bondi 1952): linear in int g, so
-        # (g* - g) is smooth; d/dt = -k e_b B g ... = -(1 + tol) k e g - (I - lam g)
-        inv_m = 1.0 / mi0 - ci.keep * ci.bondi_per_gas * gi
-        # accepted where the rate is within [1, 1 + tol] of Eddington
-        return (eb * inv_m - g, -eb * ci.keep * ci.bondi_per_gas * g - (ci.inflow - li * g),
-                _EDD_TOL / (1.0 + _EDD_TOL) * eb * inv_m)
-    return _newton(fdf, np.zeros_like(t), t.copy())
+
+def _bondi_runaway_fdf(s, g0, inv_m0, inflow, lam, kb, e_b):
+    # the gas and its integral of _bondi_phase (hole frozen in the drain)
+    e, f1, f2 = _exp_phi12(lam * s)
+    g = g0 * e + inflow * s * f1
+    gi = g0 * s * f1 + inflow * s * s * f2
+    # g* = e / (B M) with 1/M = 1/M_0 - k B int g (Bondi 1952): linear in int g, so
+    # (g* - g) is smooth; d/dt = -e_b k B g - (I - lam g); accepted where the rate is
+    # within [1, 1 + tol] of Eddington
+    inv_m = inv_m0 - kb * gi
+    return (e_b * inv_m - g, -e_b * kb * g - (inflow - lam * g),
+            _EDD_TOL / (1.0 + _EDD_TOL) * e_b * inv_m)
 
 
 def advance(gas, metals, m_bh, c: Coefficients, dt, n_steps=None) -> IntervalResult:
@@ -386,21 +397,22 @@ def _advance(gas, metals, m_bh, c: Coefficients, dt, n_steps) -> IntervalResult:
     todo = np.flatnonzero(left > 0)
     while todo.size:
         if todo.size == n:            # usually the first phase: no gathers
-            ct, g0, z0, m0, t = c, g.copy(), z.copy(), m.copy(), left.copy()
+            g0, z0, m0, t = g.copy(), z.copy(), m.copy(), left.copy()
             hb, last = h_bondi, count >= limit
+            bpg, e_c = c.bondi_per_gas, c.edd
         else:
-            ct = c.take(todo)
             g0, z0, m0, t = g[todo], z[todo], m[todo], left[todo]
             hb, last = h_bondi[todo], count[todo] >= limit[todo]
-        # the regime of each phase from its start; switches land inside the tolerance band
-        # (a phase ending early just leaves the rest to the next phase)
-        edd = (_log_ratio(ct, g0, m0) >= 0.0) & ~last
+            bpg, e_c = c.bondi_per_gas[todo], c.edd[todo]
+        # the regime of each phase from its start (B g M >= e, as _log_ratio >= 0); switches
+        # land inside the tolerance band (a phase ending early leaves the rest to the next)
+        edd = (bpg * g0 * m0 >= e_c) & ~last
         g1, z1, m1, a1, gi1, used = (np.empty_like(g0) for _ in range(6))
 
         # --- Eddington phases: exact; end where the reservoir can no longer feed e M -------
         ie = np.flatnonzero(edd)
         if ie.size:
-            ce = ct.take(ie)
+            ce = c.take(ie if todo.size == n else todo[ie])
             te = t[ie]
             ge, gie, me = _eddington_gas(g0[ie], m0[ie], ce, te)
             j = np.flatnonzero(_log_ratio(ce, ge, me) < -_EDD_TOL)
@@ -428,7 +440,7 @@ def _advance(gas, metals, m_bh, c: Coefficients, dt, n_steps) -> IntervalResult:
         # --- Bondi phases: hole frozen at the geometric mean of its end masses -----------
         ib = np.flatnonzero(~edd)
         if ib.size:
-            cb = ct.take(ib)
+            cb = c.take(ib if todo.size == n else todo[ib])
             gb0, mb0, lb = g0[ib], m0[ib], last[ib]
             # at most one Bondi step; the last phase of a halo takes all that is left
             tb = np.where(lb, t[ib], np.minimum(t[ib], hb[ib]))
