@@ -153,22 +153,16 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
     t_start = time.perf_counter()
     n = forest.n_nodes
     fb = cosmo.fb
-    z_node = forest.z
     t_snap = cosmo.age_gyr(forest.snapshots.z)
-    snap_pos = np.searchsorted(forest.snapshots.snap, forest.snap)
-    t_node = t_snap[snap_pos]
+    z_snap = np.asarray(forest.snapshots.z, dtype=float)
+    offsets = forest.snap_offsets
     desc = forest.desc_index
-    has_desc = desc >= 0
-    dt = np.where(has_desc, t_node[np.maximum(desc, 0)] - t_node, 0.0)
     mass_h = forest.mass_msun
-
-    # smooth growth of each descendant, credited to its main progenitor
-    prog_sum = np.bincount(desc[has_desc], weights=mass_h[has_desc], minlength=n)
+    main_prog = forest.main_prog
+    # total progenitor mass of each descendant (roots' desc = -1 land in bin 0, dropped);
+    # the rest of the per-node set-up is done per snapshot slice (no O(n) temporaries)
+    prog_sum = np.bincount(desc + 1, weights=mass_h, minlength=n + 1)[1:]
     n_prog = np.diff(forest.prog_offsets)
-    smooth = np.where(n_prog > 0, np.maximum(mass_h - prog_sum, 0.0), 0.0)
-    is_main = np.zeros(n, dtype=bool)
-    is_main[forest.main_prog[forest.main_prog >= 0]] = True
-    smooth_for_node = np.where(is_main & has_desc, smooth[np.maximum(desc, 0)], 0.0)
 
     gas = np.zeros(n)
     stars = np.zeros(n)
@@ -178,7 +172,6 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
     # (one-element arrays, so _grow can add to them in place)
     stripped = np.zeros(1)
     outflow = np.zeros(1)
-    node_keys = rng.stream_keys(run.seed, forest.node_id)
 
     bh = BlackHoles()
     hist = History()
@@ -201,6 +194,14 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
         v_esc = np.asarray(props.v_esc_kms, dtype=float)
         fb_eff = np.asarray(model.reionization.baryon_fraction(m, z, fb), dtype=float)
         new = n_prog[sl] == 0
+        # interval to the descendant, and the descendant's smooth growth (its mass beyond
+        # its progenitors'), credited to its main progenitor
+        d_sl = desc[sl]
+        has_desc = d_sl >= 0
+        d0 = np.where(has_desc, d_sl, rows)
+        dts = t_snap[np.searchsorted(offsets, d0, side="right") - 1] - t_snap[k]
+        main = has_desc & (main_prog[d0] == rows)
+        smooth = np.where(main, np.maximum(mass_h[d0] - prog_sum[d0], 0.0), 0.0)
         gas[sl] = np.where(new, fb_eff * m, gas[sl])
 
         # --- coalescences due by now --------------------------------------------------------
@@ -224,7 +225,8 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
             inp = sd.SeedingInputs(m_halo_msun=m, z=np.full(rows.size, z), t_vir_k=t_vir,
                                    pristine=~polluted[sl], metallicity=metal_z,
                                    n_h_cm3=np.asarray(n_h, dtype=float), gas_msun=gas[sl],
-                                   j_lw=j_lw, has_bh=has_central, keys=node_keys[sl])
+                                   j_lw=j_lw, has_bh=has_central,
+                                   keys=rng.stream_keys(run.seed, forest.node_id[sl]))
             code, seed_mass = sd.apply_channels(channels, inp)
             code = np.asarray(code)
             fire = np.flatnonzero(code > 0)
@@ -258,8 +260,7 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
         bh.host_mass[alive] = mass_h[bh.host[alive]]
 
         # --- reservoir + accretion over dt ----------------------------------------------------
-        dts = dt[sl]
-        inflow = fb_eff * smooth_for_node[sl] / np.where(dts > 0, dts, 1.0)
+        inflow = fb_eff * smooth / np.where(dts > 0, dts, 1.0)
         r_zone = model.gas_zone.radius_frac * r_vir
         t_dyn = np.asarray(dynamical_time_gyr(r_zone, v_c), dtype=float)
         step_rows = dts > 0
@@ -276,12 +277,12 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
         cbh = cbh[step_rows[bh.host[cbh] - sl.start]] if cbh.size else cbh
         if active.any():
             _grow(model, run, bh, cbh, rows, sl, active, gas, stars, metals, outflow, inflow,
-                  t_dyn, v_c, v_esc, r_vir, t_vir, dts, node_keys, k)
+                  t_dyn, v_c, v_esc, r_vir, t_vir, dts, k)
         else:
             bh.last_mdot[cbh] = 0.0
 
         # --- pass state down the trees ----------------------------------------------------------
-        go = rows[has_desc[sl]]
+        go = rows[has_desc]
         d = desc[go]
         hosted = np.zeros(rows.size, dtype=bool)
         if len(bh):
@@ -298,7 +299,7 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
             got = np.bincount(dl, weights=flag, minlength=span) > 0
             polluted[lo:lo + span] |= got
             ud = lo + np.flatnonzero(np.bincount(dl, minlength=span))
-        moved = _move_black_holes(bh, in_slice, desc, forest, k, n_snap, t_node, z_node,
+        moved = _move_black_holes(bh, in_slice, desc, forest, k, n_snap, t_snap, z_snap,
                                   mass_h, model, run, cosmo)
         # baryon cap on the receiving descendants: gas above f_b M_desc is stripped (applied
         # at every arrival, so a descendant fed from several snapshots is capped each time)
@@ -325,7 +326,7 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
 
 
 def _grow(model, run, bh, cbh, rows, sl, active, gas, stars, metals, outflow, inflow, t_dyn,
-          v_c, v_esc, r_vir, t_vir, dts, node_keys, k):
+          v_c, v_esc, r_vir, t_vir, dts, k):
     """Reservoir, accretion and feedback over the interval for halos with a central hole.
 
     Solved together, piecewise in closed form (:func:`bhgrow.physics.coupled.advance`), in
@@ -404,7 +405,8 @@ def _grow(model, run, bh, cbh, rows, sl, active, gas, stars, metals, outflow, in
 
 
 def _move_black_holes(bh: BlackHoles, in_slice, desc, forest: Forest, k: int,
-                      n_snap: int, t_node, z_node, mass_h, model, run, cosmo) -> np.ndarray:
+                      n_snap: int, t_snap, z_snap, mass_h, model, run,
+                      cosmo) -> np.ndarray:
     """Black holes of this slice follow their hosts to the descendants (see module notes).
 
     Returns the table indices of the black holes that moved.
@@ -440,8 +442,9 @@ def _move_black_holes(bh: BlackHoles, in_slice, desc, forest: Forest, k: int,
     partner = np.zeros(span)
     stay = cen & (from_main | promote)
     partner[new[stay] - lo] = bh.mass[moving[stay]]
-    pairs.start_clocks(bh, moving[sink], new[sink], old[sink], t_node[new[sink]], model, run,
-                       cosmo, mass_h, z_node[new[sink]], partner[new[sink] - lo], k)
+    k_new = np.searchsorted(forest.snap_offsets, new[sink], side="right") - 1
+    pairs.start_clocks(bh, moving[sink], new[sink], old[sink], t_snap[k_new], model, run,
+                       cosmo, mass_h, z_snap[k_new], partner[new[sink] - lo], k)
     bh.status[moving[sink]] = SINKING
     bh.last_mdot[moving[sink]] = 0.0        # sinking black holes do not accrete
     bh.host[moving] = new
