@@ -115,6 +115,12 @@ def coalesce(bh, sl, t_now, k, gas, stars, v_esc, mass_h, forest, model, run, co
     central_of = np.full(sl.stop - sl.start, -1, dtype=np.int64)
     cen = np.flatnonzero(live & (bh.status == CENTRAL))
     central_of[bh.host[cen] - sl.start] = cen
+    # candidates for triples: the slice's sinking holes (hosts and friction clocks fixed
+    # here; statuses change as ranks are applied). Per-host scratch, reset after each rank.
+    sink_loc, sink_tdf = bh.host[sink] - sl.start, bh.t_df_end[sink]
+    tc_host = np.full(sl.stop - sl.start, np.nan)
+    ev_host = np.full(sl.stop - sl.start, -1, dtype=np.int64)
+    z_now = None
     for r in range(int(rank.max()) + 1):
         ev = due[rank == r]
         ev = ev[bh.status[ev] == SINKING]            # a triple may have removed some
@@ -131,12 +137,11 @@ def coalesce(bh, sl, t_now, k, gas, stars, v_esc, mass_h, forest, model, run, co
         if ev.size == 0:
             continue
         # triples: another sinking black hole reached the nucleus before this pair merged
-        tc_host = np.full(sl.stop - sl.start, np.nan)
-        ev_host = np.full(sl.stop - sl.start, -1, dtype=np.int64)
         tc_host[loc], ev_host[loc] = bh.t_c[ev], ev
-        others = np.flatnonzero(live & (bh.status == SINKING))
-        ol = bh.host[others] - sl.start
-        intr = others[(bh.t_df_end[others] < tc_host[ol]) & (others != ev_host[ol])]
+        still = bh.status[sink] == SINKING
+        others, ol = sink[still], sink_loc[still]
+        intr = others[(sink_tdf[still] < tc_host[ol]) & (others != ev_host[ol])]
+        tc_host[loc], ev_host[loc] = np.nan, -1
         keep = np.ones(ev.size, dtype=bool)
         if intr.size:
             o2, _ = rank_within(bh.host[intr], bh.t_df_end[intr])
@@ -152,7 +157,9 @@ def coalesce(bh, sl, t_now, k, gas, stars, v_esc, mass_h, forest, model, run, co
             lightest = np.argmin(trio, axis=1)
             out = np.where(lightest == 0, c[e_of], np.where(lightest == 1, ev[e_of], intr))
             bh.status[out] = EJECTED_TRIPLE
-            bh.end_z[out] = float(cosmo_z(cosmo, t_now))
+            if z_now is None:
+                z_now = float(cosmo_z(cosmo, t_now))
+            bh.end_z[out] = z_now
             bh.host_mass[out] = mass_h[bh.host[out]]
             bh.host[out] = -1
             # central ejected: the event black hole becomes the central, no coalescence now
