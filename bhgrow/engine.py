@@ -268,8 +268,10 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
         if quiet.any():
             q = np.flatnonzero(quiet)
             g_sl, s_sl, z_sl = gas[sl], stars[sl], metals[sl]      # views
-            res = model.star_formation.step(g_sl[q], s_sl[q], z_sl[q], inflow[q], t_dyn[q],
-                                            v_c[q], dts[q])
+            # the closed-form step of StarFormation.step, without its argument checks
+            # (all made here) and the metal-flow integrals (not used)
+            res = model.star_formation._evolve(g_sl[q], s_sl[q], z_sl[q], inflow[q],
+                                               t_dyn[q], v_c[q], dts[q], metal_flows=False)
             g_sl[q], s_sl[q], z_sl[q] = res.gas, res.stars, res.metals
             outflow += res.outflow_msun.sum()
         active = step_rows & has_central

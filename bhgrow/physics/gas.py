@@ -287,13 +287,14 @@ _C_PSI = _coeffs(lambda k: k + 1.0, 2)     # (1 - (1 + x) e^-x) / x^2
 _C_CHI = _coeffs(lambda k: k + 1.0, 3)     # (x - 2 + (2 + x) e^-x) / x^3
 
 
-def _decay_integrals(x: np.ndarray):
+def _decay_integrals(x: np.ndarray, with_chi: bool = True):
     """Integrals of ``e^-x``-type kernels, stable for ``x -> 0`` (exponential-integrator
     phi-functions, Hochbruck & Ostermann 2010, Acta Numerica 19, 209).
 
     Returns ``e^-x``, ``phi1 = (1 - e^-x)/x``, ``phi2 = (x - 1 + e^-x)/x^2``,
     ``psi = (1 - (1+x) e^-x)/x^2`` and ``chi = (x - 2 + (2+x) e^-x)/x^3``; their limits at
     ``x = 0`` are 1, 1, 1/2, 1/2, 1/6. Below ``x = 0.05`` a 12-term Taylor series is used.
+    ``chi`` is None unless ``with_chi``.
     """
     shape = np.shape(x)
     x = np.atleast_1d(np.asarray(x, dtype=np.float64))
@@ -304,14 +305,15 @@ def _decay_integrals(x: np.ndarray):
         phi1 = em1 / x
         phi2 = (x - em1) / (x * x)
         psi = (em1 - x * e) / (x * x)
-        chi = (x - 2.0 + (2.0 + x) * e) / (x * x * x)
+        chi = (x - 2.0 + (2.0 + x) * e) / (x * x * x) if with_chi else None
     if np.any(small):
         xs = x[small]
         phi1[small] = _series(xs, _C_PHI1)
         phi2[small] = _series(xs, _C_PHI2)
         psi[small] = _series(xs, _C_PSI)
-        chi[small] = _series(xs, _C_CHI)
-    return tuple(f.reshape(shape) for f in (e, phi1, phi2, psi, chi))
+        if with_chi:
+            chi[small] = _series(xs, _C_CHI)
+    return tuple(None if f is None else f.reshape(shape) for f in (e, phi1, phi2, psi, chi))
 
 
 class GasStep(NamedTuple):
@@ -488,13 +490,20 @@ class StarFormation:
             if not np.all(arr > 0.0):
                 raise ValueError(f"StarFormation.step: `{name}` must be > 0 everywhere")
 
+        return self._evolve(mg0, ms0, mz0, inflow, tdyn, vc, dt)
+
+    def _evolve(self, mg0, ms0, mz0, inflow, tdyn, vc, dt, *,
+                metal_flows: bool = True) -> GasStep:
+        """:meth:`step` on float64 arrays of one shape, without the argument checks (the
+        engine's inner loop; its inputs are checked where they are made). Without
+        ``metal_flows`` the two metal-flow fields are None."""
         eta = self.mass_loading(vc)
         r = self.recycle
         s = self.efficiency / tdyn                    # star-formation rate per unit gas, 1/Gyr
         # a = (1 - R + eta) eps / t_dyn: gas depletion rate (instantaneous recycling, Tinsley 1980)
         a = (1.0 - r + eta) * s
         x = a * dt
-        e, phi1, phi2, psi, chi = _decay_integrals(x)
+        e, phi1, phi2, psi, chi = _decay_integrals(x, with_chi=metal_flows)
         p = self.metal_yield * (1.0 - r) * s          # metal production per unit gas, 1/Gyr
 
         # M_g(t) = M_g0 e^-at + I (1 - e^-at) / a  (linear ODE dM_g/dt = I - a M_g)
@@ -504,7 +513,8 @@ class StarFormation:
         # M_Z(t) = M_Z0 e^-at + p int_0^t e^-a(t-u) M_g(u) du  (variation of constants)
         mz = mz0 * e + p * (mg0 * dt * e + inflow * dt * dt * psi)
         # int_0^dt M_Z dt'
-        mz_int = mz0 * dt * phi1 + p * (mg0 * dt * dt * psi + inflow * dt ** 3 * chi)
+        mz_int = (mz0 * dt * phi1 + p * (mg0 * dt * dt * psi + inflow * dt ** 3 * chi)
+                  if metal_flows else None)
 
         # dM_*/dt = (1 - R) SFR; outflow = eta SFR  (Cole et al. 2000; Tinsley 1980)
         formed = (1.0 - r) * s * mg_int
@@ -515,8 +525,8 @@ class StarFormation:
             metals=mz,
             outflow_msun=outflow,
             stars_formed_msun=formed,
-            metals_outflow_msun=eta * s * mz_int,
-            metals_locked_msun=(1.0 - r) * s * mz_int,
+            metals_outflow_msun=eta * s * mz_int if metal_flows else None,
+            metals_locked_msun=(1.0 - r) * s * mz_int if metal_flows else None,
         )
 
 
