@@ -71,6 +71,8 @@ _SERIES_X = 0.05
 #: a reservoir feeding at least (1 - _EDD_TOL) of the Eddington rate counts as Eddington-fed:
 #: the phase switches, which are found by root finding, then land on the right side
 _EDD_TOL = 1e-3
+#: e^(-tol) and e^(+tol): the band's edges as factors (ln(B g M / e) against -+tol)
+_EXP_M_TOL, _EXP_P_TOL = np.exp(-_EDD_TOL), np.exp(_EDD_TOL)
 #: rise of the hole's share of the reservoir's loss rate per step, per unit max_dlnm
 _DRAIN_SHARE = 0.1
 
@@ -172,11 +174,16 @@ def _exp_phi12(x):
     return e, f1, f2
 
 
-def _psi(x):
-    """``(1 - (1 + x) e^-x) / x^2`` (1/2 at 0): sum_k (-1)^k (k + 1) x^k / (k + 2)!."""
-    return _small(x, (1.0 - (1.0 + x) * np.exp(-x)) / (x * x), lambda v: 0.5 + v * (
-        -1.0 / 3 + v * (1.0 / 8 + v * (-1.0 / 30 + v * (1.0 / 144 + v * (
-            -1.0 / 840 + v / 5760))))))
+def _series_psi(v):
+    return 0.5 + v * (-1.0 / 3 + v * (1.0 / 8 + v * (-1.0 / 30 + v * (1.0 / 144 + v * (
+        -1.0 / 840 + v / 5760)))))
+
+
+def _psi(x, e=None):
+    """``(1 - (1 + x) e^-x) / x^2`` (1/2 at 0): sum_k (-1)^k (k + 1) x^k / (k + 2)!
+    (``e``: ``e^-x`` if already known)."""
+    e = np.exp(-x) if e is None else e
+    return _small(x, (1.0 - (1.0 + x) * e) / (x * x), _series_psi)
 
 
 def _metals(z0, g0, inflow, rate, p, t):
@@ -184,7 +191,7 @@ def _metals(z0, g0, inflow, rate, p, t):
     follows ``g(u) = g0 e^{-rate u} + I u phi1(rate u)`` (variation of constants)."""
     x = rate * t
     e = np.exp(-x)
-    return z0 * e + p * (g0 * t * e + inflow * t * t * _psi(x))
+    return z0 * e + p * (g0 * t * e + inflow * t * t * _psi(x, e))
 
 
 def _eddington_state(g0, m0, c: Coefficients, t):
@@ -319,13 +326,14 @@ def _bondi_mass(m0, c: Coefficients, gas_integral):
     return m0 / np.maximum(1.0 - d, 1e-12)
 
 
-def _mean_mass(m0, c: Coefficients, gas_integral, t):
-    """``sqrt(M_0 M_1)`` for Bondi growth over ``t``, ``M_1`` capped at Eddington growth.
+def _mean_mass(m0, c: Coefficients, gas_integral, edd_growth):
+    """``sqrt(M_0 M_1)`` for Bondi growth, ``M_1`` capped at Eddington growth
+    (``edd_growth = e^{k e t}`` over the phase).
 
     With the hole frozen at this mass in the drain, the gas it takes, ``B Mbar^2 int g``,
     equals the Bondi growth ``(M_1 - M_0) / k`` exactly.
     """
-    m1 = np.minimum(_bondi_mass(m0, c, gas_integral), m0 * np.exp(c.keep * c.edd * t))
+    m1 = np.minimum(_bondi_mass(m0, c, gas_integral), m0 * edd_growth)
     return np.sqrt(m0 * m1)
 
 
@@ -415,7 +423,7 @@ def _advance(gas, metals, m_bh, c: Coefficients, dt, n_steps) -> IntervalResult:
             ce = c.take(ie if todo.size == n else todo[ie])
             te = t[ie]
             ge, gie, me = _eddington_gas(g0[ie], m0[ie], ce, te)
-            j = np.flatnonzero(_log_ratio(ce, ge, me) < -_EDD_TOL)
+            j = np.flatnonzero(ce.bondi_per_gas * ge * me < _EXP_M_TOL * ce.edd)
             if j.size:
                 cj = ce.take(j)
                 s = _eddington_end(g0[ie][j], m0[ie][j], cj, te[j])
@@ -448,13 +456,14 @@ def _advance(gas, metals, m_bh, c: Coefficients, dt, n_steps) -> IntervalResult:
             tb = np.where(lb, tb, _bondi_switch_time(gb0, cb, mb0, tb))
             gb, gib, _, _ = _bondi_phase(gb0, mb0, cb, tb, mb0)                # predictor
             # the hole's own growth lifts the rate to Eddington within the phase
-            j = np.flatnonzero((_log_ratio(cb, gb, _bondi_mass(mb0, cb, gib)) > _EDD_TOL)
-                               & ~lb)
+            j = np.flatnonzero((cb.bondi_per_gas * gb * _bondi_mass(mb0, cb, gib)
+                                > _EXP_P_TOL * cb.edd) & ~lb)
             if j.size:
                 cj = cb.take(j)
                 tb[j] = _bondi_runaway(gb0[j], mb0[j], cj, tb[j], mb0[j])
                 gb[j], gib[j], _, _ = _bondi_phase(gb0[j], mb0[j], cj, tb[j], mb0[j])
-            mbar = _mean_mass(mb0, cb, gib, tb)
+            kt = cb.keep * cb.edd * tb
+            mbar = _mean_mass(mb0, cb, gib, np.exp(kt))
             # corrector, where the hole's drain on the gas changes by more than 1e-10 over
             # the phase (elsewhere the predictor's gas is already exact to that level)
             s = np.flatnonzero(cb.per_unit * cb.bondi_per_gas * (mbar * mbar - mb0 * mb0) * tb
@@ -462,14 +471,14 @@ def _advance(gas, metals, m_bh, c: Coefficients, dt, n_steps) -> IntervalResult:
             if s.size:
                 cs, gs0, ms0, ts = cb.take(s), gb0[s], mb0[s], tb[s]
                 _, gis, _, _ = _bondi_phase(gs0, ms0, cs, ts, mbar[s])
-                mbar[s] = _mean_mass(ms0, cs, gis, ts)
+                mbar[s] = _mean_mass(ms0, cs, gis, np.exp(kt[s]))
                 gb[s], gib[s], _, _ = _bondi_phase(gs0, ms0, cs, ts, mbar[s])
             accb = cb.bondi_per_gas * mbar * mbar * gib
             lam = cb.loss + cb.per_unit * cb.bondi_per_gas * mbar * mbar
             if lb.any():
                 # no more switches: never above the Eddington-limited growth; gas not
                 # taken stays in the reservoir
-                cap_b = mb0 * np.expm1(cb.keep * cb.edd * tb) / cb.keep
+                cap_b = mb0 * np.expm1(kt) / cb.keep
                 over = np.where(lb, np.maximum(accb - cap_b, 0.0), 0.0)
                 accb = accb - over
                 gb = gb + cb.per_unit * over
