@@ -450,10 +450,12 @@ def _advance(gas, metals, m_bh, c: Coefficients, dt, n_steps) -> IntervalResult:
         if ib.size:
             cb = c.take(ib if todo.size == n else todo[ib])
             gb0, mb0, lb = g0[ib], m0[ib], last[ib]
-            # at most one Bondi step; the last phase of a halo takes all that is left
-            tb = np.where(lb, t[ib], np.minimum(t[ib], hb[ib]))
-            # the gas, rising towards its equilibrium, lifts the rate to Eddington
-            tb = np.where(lb, tb, _bondi_switch_time(gb0, cb, mb0, tb))
+            # at most one Bondi step, ending early where the gas, rising towards its
+            # equilibrium, lifts the rate to Eddington; the last phase of a halo takes all
+            # that is left
+            tb = _bondi_switch_time(gb0, cb, mb0, np.minimum(t[ib], hb[ib]))
+            if lb.any():
+                tb = np.where(lb, t[ib], tb)
             gb, gib, _, _ = _bondi_phase(gb0, mb0, cb, tb, mb0)                # predictor
             # the hole's own growth lifts the rate to Eddington within the phase
             j = np.flatnonzero((cb.bondi_per_gas * gb * _bondi_mass(mb0, cb, gib)
