@@ -170,16 +170,19 @@ def _load(args):
                        snapshots=args.snapshots, box_mpc=args.box_mpc)
 
 
-def _cmd_trees_check(args) -> int:
+def _load_checked(args):
+    """The checked trees: a bhgrow HDF5 file is opened lazily and checked chunk by chunk
+    (memory follows the chunk, not the file); other inputs are loaded whole."""
     from .trees.io import is_hdf5_path, open_forests
 
     if is_hdf5_path(args.file) and not args.columns and args.h is None \
             and args.snapshots is None:
-        # a bhgrow HDF5 file is checked chunk by chunk: memory follows the chunk, not the file
-        forest = open_forests(args.file, box_mpc=args.box_mpc, check=False)
-        forest.check()
-    else:
-        forest = _load(args)
+        return open_forests(args.file, box_mpc=args.box_mpc, check=False).check()
+    return _load(args)
+
+
+def _cmd_trees_check(args) -> int:
+    forest = _load_checked(args)
     print(f"{args.file}: OK — {forest.n_forests} forests, {forest.n_nodes} nodes, "
           f"{len(forest.snapshots)} snapshots")
     return EXIT_OK
@@ -190,8 +193,7 @@ def _cmd_trees_info(args) -> int:
 
     from .trees.summary import format_summary, summarize
 
-    forest = _load(args)
-    info = summarize(forest)
+    info = summarize(_load_checked(args))
     if args.json:
         def _plain(o):
             if isinstance(o, np.ndarray):

@@ -587,6 +587,18 @@ class HDF5Forests:
             return ids
         return ids[np.argsort(self._start[self._positions(ids)], kind="stable")]
 
+    def chunk_ids(self, max_nodes: int = 2_000_000):
+        """Yield the forest ids in file order, in runs of at most ``max_nodes`` nodes (a
+        larger forest alone): the chunks a whole-file pass reads one at a time."""
+        order = self._file_order()
+        total = np.cumsum(self._counts[order])
+        start = 0
+        while start < order.size:
+            done = int(total[start - 1]) if start else 0
+            stop = max(start + 1, int(np.searchsorted(total, done + max_nodes, side="right")))
+            yield self.forest_ids[order[start:stop]]
+            start = stop
+
     # ------------------------------------------------------------ validation
     def _file_order(self) -> np.ndarray:
         """Forest positions in the order their rows come in the file (ids if scattered)."""
@@ -611,16 +623,10 @@ class HDF5Forests:
             raise BhgrowInputError(f"`max_nodes` of HDF5Forests.check must be an integer >= 1;"
                                    f" got {max_nodes!r}")
         chk = ChunkedCheck(self._snap_raw, self._z_raw)
-        order = self._file_order()
-        sizes = self._counts[order]
-        start = 0
-        while start < order.size:
-            total = np.cumsum(sizes[start:])
-            stop = start + max(1, int(np.searchsorted(total, max_nodes, side="right")))
-            cols, rows = self.read_columns(self.forest_ids[order[start:stop]], rows=True)
+        for ids in self.chunk_ids(max_nodes):
+            cols, rows = self.read_columns(ids, rows=True)
             chk.add_chunk(cols, rows)
             del cols, rows
-            start = stop
         if chk.id_columns_ok():
             # ids held at once: a chunk, or a read block if more
             budget = max(int(max_nodes), int(READ_BLOCK_ROWS))
