@@ -25,3 +25,34 @@ def test_selected_forests_index_equals_a_fresh_index(frac):
         a, b = getattr(sub, name), getattr(fresh, name)
         assert a.dtype == b.dtype, name
         np.testing.assert_array_equal(a, b, err_msg=name)
+
+
+def _columns(f, rows):
+    return {"node_id": f.node_id[rows], "desc_id": f.desc_id[rows],
+            "forest_id": f.forest_id[rows], "snap": f.snap[rows], "mass_msun": f.mass_msun[rows]}
+
+
+@pytest.mark.parametrize("shuffle", [False, True])
+def test_row_order_and_progenitors_equal_full_lexsorts(shuffle):
+    # from_columns takes a fast path when rows come by (forest, node id) within each
+    # snapshot, and _index sorts the minor keys only for descendants with several
+    # progenitors; both must give exactly the orders of the full three-key sorts
+    # (numpy.lexsort), also with equal masses among progenitors (ties broken by node id)
+    from bhgrow.trees.toy import toy_forest
+
+    f = toy_forest(60, seed=8, n_snap=20, box_mpc=30.0)
+    rng = np.random.default_rng(4)
+    mass = f.mass_msun.copy()
+    mass[rng.random(mass.size) < 0.3] = 1e10           # many equal masses
+    rows = rng.permutation(f.n_nodes) if shuffle else \
+        np.lexsort((f.node_id, f.snap, f.forest_id))   # bhgrow's file order
+    cols = _columns(f, rows)
+    cols["mass_msun"] = mass[rows]
+    g = Forest.from_columns(cols, f.snapshots.snap, f.snapshots.z)
+    order = np.lexsort((cols["node_id"], cols["forest_id"], cols["snap"]))
+    np.testing.assert_array_equal(g.node_id, cols["node_id"][order])
+    has = np.flatnonzero(g.desc_index >= 0)
+    full = has[np.lexsort((g.node_id[has], -g.mass_msun[has], g.desc_index[has]))]
+    np.testing.assert_array_equal(g.prog_index, full)
+    # and the descendant rows point at the right ids
+    np.testing.assert_array_equal(g.node_id[g.desc_index[has]], g.desc_id[has])
