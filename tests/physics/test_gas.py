@@ -136,6 +136,18 @@ def test_step_vectorized_equals_elementwise():
             assert a[i] == b[0]
 
 
+def test_engine_step_without_metal_flows_is_the_same_step():
+    # the engine's unchecked StarFormation._evolve(metal_flows=False) is StarFormation.step
+    # (checked above against solve_ivp) minus the two metal-flow fields
+    sf = StarFormation()
+    cols = [np.array(c, dtype=float) for c in zip(*CASES)]
+    full = sf.step(*cols)
+    lean = sf._evolve(*cols, metal_flows=False)
+    for name in ("gas", "stars", "metals", "outflow_msun", "stars_formed_msun"):
+        np.testing.assert_array_equal(getattr(lean, name), getattr(full, name), err_msg=name)
+    assert lean.metals_outflow_msun is None and lean.metals_locked_msun is None
+
+
 def test_step_steady_state():
     # closed form: for dt >> 1/a, M_g -> I/a and M_Z -> p I / a^2, i.e. the equilibrium
     # metallicity Z_eq = y (1 - R) / (1 - R + eta) of the "bathtub" model with pristine inflow
