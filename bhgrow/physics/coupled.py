@@ -194,17 +194,23 @@ def _metals(z0, g0, inflow, rate, p, t):
     return z0 * e + p * (g0 * t * e + inflow * t * t * _psi(x, e))
 
 
-def _eddington_state(g0, m0, c: Coefficients, t):
-    """Gas and hole mass after ``t`` of an Eddington phase (exact), and ``phi1(a t)``."""
-    a, b = c.loss, c.keep * c.edd
+def _eddington_gas_at(g0, m0, inflow, a, b, pe, t):
+    """Gas after ``t`` of an Eddington phase (exact), ``e^{bt}`` and ``phi1(a t)``
+    (``a``: loss rate, ``b = k e``, ``pe = P e``)."""
     at = a * t
     e_at = np.exp(-at)
     f1a = _small(at, (1.0 - e_at) / at, _series_phi1)
     ebt = np.exp(b * t)
     # variation of constants for dg/dt = I - a g - P e M_0 e^{bt}: the forcing integrates
     # to t e^{bt} phi1((a + b) t)
-    g = (g0 * e_at + c.inflow * t * f1a
-         - c.per_unit * c.edd * m0 * t * ebt * _phi1(at + b * t))
+    g = g0 * e_at + inflow * t * f1a - pe * m0 * t * ebt * _phi1(at + b * t)
+    return g, ebt, f1a
+
+
+def _eddington_state(g0, m0, c: Coefficients, t):
+    """Gas and hole mass after ``t`` of an Eddington phase (exact), and ``phi1(a t)``."""
+    g, ebt, f1a = _eddington_gas_at(g0, m0, c.inflow, c.loss, c.keep * c.edd,
+                                    c.per_unit * c.edd, t)
     return g, m0 * ebt, f1a
 
 
@@ -307,12 +313,8 @@ def _eddington_end(g0, m0, c: Coefficients, t):
 
 
 def _eddington_end_fdf(s, g0, m0, inflow, a, b, pe, star):
-    # the gas of _eddington_state, with M = M_0 e^{bs} and g* = star e^{-bs}
-    at = a * s
-    e_at = np.exp(-at)
-    ebt = np.exp(b * s)
-    g = (g0 * e_at + inflow * s * _small(at, (1.0 - e_at) / at, _series_phi1)
-         - pe * m0 * s * ebt * _phi1(at + b * s))
+    # M = M_0 e^{bs} and g* = star e^{-bs}
+    g, ebt, _ = _eddington_gas_at(g0, m0, inflow, a, b, pe, s)
     gs = star / ebt
     # dg/dt = I - a g - P e M (Eddington phase); d g*/dt = -b g*; accepted where the rate
     # is within [1 - tol, 1] of Eddington
