@@ -14,7 +14,8 @@ accreted). A halo without progenitors starts with ``f_b,eff * M`` of pristine ga
 
 Per snapshot slice
 ------------------
-1. halo properties; new halos get their initial gas;
+1. halo properties (escape speeds only where black holes are); new halos get their
+   initial gas;
 2. seeding (halos without a central black hole; channels in config order);
 3. reservoir and black holes over ``dt``: halos without a central black hole take one exact
    closed-form reservoir step (:meth:`bhgrow.physics.gas.StarFormation.step`); halos with
@@ -94,9 +95,28 @@ class BlackHoles:
         return int(self.bh_id.size)
 
     def append(self, **cols) -> None:
-        for name, arr in cols.items():
+        """Append rows (every column given). Columns are views of buffers that grow by
+        doubling, so appending a few rows per snapshot does not copy the whole table."""
+        n = len(self)
+        add = {name: np.asarray(arr, dtype=getattr(self, name).dtype)
+               for name, arr in cols.items()}
+        k = next(iter(add.values())).size if add else 0
+        bufs = self.__dict__.setdefault("_buffers", {})
+        for name, arr in add.items():
             cur = getattr(self, name)
-            setattr(self, name, np.concatenate([cur, np.asarray(arr, dtype=cur.dtype)]))
+            buf = bufs.get(name)
+            if buf is None or buf.size < n + k or cur.base is not buf:
+                # a column set from outside, or a full buffer: start a new one
+                buf = np.empty(max(2 * (n + k), 64), dtype=cur.dtype)
+                buf[:n] = cur
+                bufs[name] = buf
+            buf[n:n + k] = arr
+            setattr(self, name, buf[:n + k])
+
+    def __getstate__(self):
+        # pickle the columns only, not their spare capacity
+        return {k: (np.array(v) if isinstance(v, np.ndarray) else v)
+                for k, v in self.__dict__.items() if k != "_buffers"}
 
 
 @dataclass
@@ -187,11 +207,13 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
         rows = np.arange(sl.start, sl.stop)
         z = float(forest.snapshots.z[k])
         m = mass_h[sl]
-        props = model.halo.properties(m, z, cosmo)
-        r_vir = np.asarray(props.r_vir_kpc, dtype=float)
-        v_c = np.asarray(props.v_c_kms, dtype=float)
-        t_vir = np.asarray(props.t_vir_k, dtype=float)
-        v_esc = np.asarray(props.v_esc_kms, dtype=float)
+        r_vir, v_c, t_vir = (np.asarray(x, dtype=float)
+                             for x in model.halo.virial(m, z, cosmo))
+        # escape speeds (coalescence kicks, feedback) only where black holes are
+        v_esc = np.zeros(rows.size)
+        if len(bh):
+            _escape_speeds(model, m, z, cosmo, v_esc, bh.host[(bh.host >= sl.start)
+                                                              & (bh.host < sl.stop)] - sl.start)
         fb_eff = np.asarray(model.reionization.baryon_fraction(m, z, fb), dtype=float)
         new = n_prog[sl] == 0
         # interval to the descendant, and the descendant's smooth growth (its mass beyond
@@ -216,8 +238,8 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
         has_central[bh.host[central] - sl.start] = True
 
         # --- seeding ------------------------------------------------------------------------
-        rho, cs, n_h = model.gas_zone.state(gas[sl], r_vir, t_vir)
         if channels:
+            n_h = model.gas_zone.hydrogen_density(gas[sl], r_vir)
             metal_z = np.divide(metals[sl], gas[sl], out=np.zeros(rows.size),
                                 where=gas[sl] > 0)
             j_lw = forest.extra["j_lw"][sl] if "j_lw" in forest.extra else np.full(rows.size,
@@ -245,6 +267,7 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
                 for c, cnt in zip(*np.unique(code[fire], return_counts=True)):
                     n_seeds[CHANNEL_NAMES[int(c)]] += int(cnt)
                 has_central[fire] = True
+                _escape_speeds(model, m, z, cosmo, v_esc, fire)
                 in_slice = np.r_[in_slice, np.ones(fire.size, bool)]
                 central = np.r_[central, np.ones(fire.size, bool)]
 
@@ -325,6 +348,15 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
     return EngineResult(black_holes=bh, history=hist, forest=forest, ledger=ledger,
                         baryons=baryon, n_seeds=n_seeds, wall_s=time.perf_counter() - t_start,
                         mergers=mergers)
+
+
+def _escape_speeds(model, m, z, cosmo, v_esc, loc) -> None:
+    """Fill ``v_esc`` (km/s) at the local rows ``loc`` (repeats allowed)."""
+    if loc.size:
+        need = np.zeros(v_esc.size, dtype=bool)
+        need[loc] = True
+        at = np.flatnonzero(need)
+        v_esc[at] = model.halo.escape_speed_kms(m[at], z, cosmo)
 
 
 def _grow(model, run, bh, cbh, rows, sl, active, gas, stars, metals, outflow, inflow, t_dyn,

@@ -198,3 +198,24 @@ def test_density_dependent_accretion_law_runs_and_converges():
     # the total converges (measured: 1.9% between the default and a ten-fold finer step);
     # single holes near a Bondi runaway under the density-squared boost stay step-sensitive
     assert abs(b.sum() / a.sum() - 1) < 3e-2
+
+
+def test_black_hole_table_append_grows_in_place_and_pickles_its_rows_only():
+    import pickle
+
+    from bhgrow.engine import BlackHoles
+
+    table = BlackHoles()
+    names = list(table.__dataclass_fields__)
+    for i in range(40):                               # past several buffer doublings
+        table.append(**{k: np.full(3, i) for k in names})
+    assert len(table) == 120
+    np.testing.assert_array_equal(table.bh_id, np.repeat(np.arange(40), 3))
+    table.mass = table.mass * 2.0                     # a column replaced from outside
+    table.append(**{k: np.full(1, 99) for k in names})
+    assert table.mass[-1] == 99 and table.mass[0] == 0.0 and table.mass[-2] == 78.0
+    back = pickle.loads(pickle.dumps(table))
+    assert len(back) == 121 and "_buffers" not in vars(back)
+    for k in names:
+        np.testing.assert_array_equal(getattr(back, k), getattr(table, k))
+

@@ -675,12 +675,20 @@ class GasZone:
             ``(rho_msun_kpc3, cs_kms, n_h_cm3)``: mean gas density in Msun/kpc^3, sound speed
             in km/s, hydrogen number density in cm^-3 (float64 arrays, broadcast shape).
         """
-        m = np.asarray(gas, dtype=np.float64)
-        r = self.radius_kpc(r_vir_kpc)
-        # rho = M_gas / (4/3 pi r_zone^3)  (uniform zone)
-        rho = m / (4.0 / 3.0 * math.pi * r**3)
+        rho = self._density(gas, r_vir_kpc)
         t_gas, mu = self.temperature_k(t_vir_k)
         cs = sound_speed_kms(t_gas, mu, self.gamma)
         rho, cs = np.broadcast_arrays(rho, cs)
         return ZoneState(rho_msun_kpc3=np.array(rho), cs_kms=np.array(cs),
                          n_h_cm3=hydrogen_density_cm3(rho))
+
+    def _density(self, gas, r_vir_kpc):
+        m = np.asarray(gas, dtype=np.float64)
+        r = self.radius_kpc(r_vir_kpc)
+        # rho = M_gas / (4/3 pi r_zone^3)  (uniform zone)
+        return m / (4.0 / 3.0 * math.pi * r**3)
+
+    def hydrogen_density(self, gas, r_vir_kpc) -> np.ndarray:
+        """Hydrogen number density of the zones, cm^-3: the ``n_h_cm3`` of :meth:`state`
+        alone (no temperature needed). Arguments as for :meth:`state`."""
+        return hydrogen_density_cm3(self._density(gas, r_vir_kpc))

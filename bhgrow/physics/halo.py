@@ -440,16 +440,42 @@ class HaloStructure:
         m = np.asarray(m_vir_msun, dtype=np.float64)
         z = np.asarray(z, dtype=np.float64)
         shape = np.broadcast_shapes(m.shape, z.shape)
-        delta = delta_vir_bryan_norman(cosmo.omega_m(z))
-        r_vir = virial_radius_kpc(m, z, cosmo, delta=delta)
-        v_c = circular_velocity_kms(m, r_vir)
+        delta, r_vir, v_c, t_vir = self._virial(m, z, cosmo)
         conc = CONCENTRATION_RELATIONS[self.concentration](m, z, cosmo.h)
         return HaloProps(
             delta_vir=np.broadcast_to(delta, shape).astype(np.float64),
             r_vir_kpc=r_vir,
             v_c_kms=v_c,
-            t_vir_k=virial_temperature_k(v_c, self.mu),
+            t_vir_k=t_vir,
             conc=conc,
             v_max_kms=nfw_vmax_kms(v_c, conc),
             v_esc_kms=nfw_escape_speed_central_kms(v_c, conc),
         )
+
+    def _virial(self, m, z, cosmo):
+        delta = delta_vir_bryan_norman(cosmo.omega_m(z))
+        r_vir = virial_radius_kpc(m, z, cosmo, delta=delta)
+        v_c = circular_velocity_kms(m, r_vir)
+        return delta, r_vir, v_c, virial_temperature_k(v_c, self.mu)
+
+    def virial(self, m_vir_msun, z, cosmo):
+        """Virial radius (kpc), circular velocity (km/s) and virial temperature (K): the
+        first fields of :meth:`properties`, without the NFW profile.
+
+        Parameters and units as for :meth:`properties`; returns three float64 arrays.
+        """
+        m = np.asarray(m_vir_msun, dtype=np.float64)
+        z = np.asarray(z, dtype=np.float64)
+        return self._virial(m, z, cosmo)[1:]
+
+    def escape_speed_kms(self, m_vir_msun, z, cosmo):
+        """Escape speed from the halo centre, km/s: the ``v_esc_kms`` field of
+        :meth:`properties` alone (:func:`nfw_escape_speed_central_kms`).
+
+        Parameters and units as for :meth:`properties`; returns a float64 array.
+        """
+        m = np.asarray(m_vir_msun, dtype=np.float64)
+        z = np.asarray(z, dtype=np.float64)
+        v_c = self._virial(m, z, cosmo)[2]
+        conc = CONCENTRATION_RELATIONS[self.concentration](m, z, cosmo.h)
+        return nfw_escape_speed_central_kms(v_c, conc)

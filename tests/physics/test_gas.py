@@ -327,6 +327,15 @@ def test_zone_temperature_phases():
     np.testing.assert_allclose(st.cs_kms, gas.sound_speed_kms(t_ref, mu), rtol=1e-14)
 
 
+def test_zone_hydrogen_density_alone_equals_state():
+    # the engine's seeding needs n_H only; it must be the number state() gives
+    zone = GasZone()
+    g = np.array([0.0, 1e6, 3e9])
+    rv = np.array([1.0, 10.0, 200.0])
+    np.testing.assert_array_equal(zone.hydrogen_density(g, rv),
+                                  zone.state(g, rv, np.full(3, 1e4)).n_h_cm3)
+
+
 def test_zone_radius_mo_mao_white():
     # R_d = lambda r_vir / sqrt(2) (Mo, Mao & White 1998); default 0.04 <-> lambda ~ 0.057
     assert GasZone().radius_frac == 0.04

@@ -100,6 +100,21 @@ def test_r_vir_matches_colossus(cosmo, colossus_planck_like, z):
     np.testing.assert_allclose(props.r_vir_kpc, ref, rtol=1e-3)
 
 
+@pytest.mark.parametrize("z", [0.0, 6.0])
+def test_virial_and_escape_speed_equal_the_fields_of_properties(cosmo, z):
+    # the engine takes these parts alone; they must be the same numbers as the full set
+    # (whose physics the colossus and numeric-potential checks in this file cover)
+    hs = HaloStructure()
+    props = hs.properties(MASSES_MSUN, z, cosmo)
+    r_vir, v_c, t_vir = hs.virial(MASSES_MSUN, z, cosmo)
+    np.testing.assert_array_equal(r_vir, props.r_vir_kpc)
+    np.testing.assert_array_equal(v_c, props.v_c_kms)
+    np.testing.assert_array_equal(t_vir, props.t_vir_k)
+    v_esc = hs.escape_speed_kms(MASSES_MSUN, z, cosmo)
+    np.testing.assert_array_equal(v_esc, props.v_esc_kms)
+    np.testing.assert_array_equal(hs.escape_speed_kms(MASSES_MSUN[1:2], z, cosmo), v_esc[1:2])
+
+
 @pytest.mark.parametrize("z", [0.0, 2.0, 10.0])
 def test_r_200c_with_explicit_delta_matches_colossus(cosmo, colossus_planck_like, z):
     # colossus mass_so.M_to_R(M, z, '200c') (Diemer 2018): overdensity 200 x rho_crit(z)
