@@ -259,27 +259,30 @@ def _bondi_switch_time(g0, c: Coefficients, mbar, t):
     return np.where(rises | lin, np.clip(ts, 0.0, t), t)
 
 
-def _newton(fdf, lo, hi, args):
+def _newton(fdf, lo, hi, args, s0=None):
     """Root of a decreasing ``f`` bracketed by ``f(lo) >= 0 > f(hi)`` (vectorized).
 
     ``fdf(s, *args)`` returns ``(f, f', band)`` at ``s`` (``args``: per-element arrays,
     compacted here as elements finish); a point with ``0 <= f <= band`` is accepted.
-    Safeguarded Newton (rtsafe, Press et al. 2007, sect. 9.4) from the ``lo`` end, each
-    step aimed at the middle of the acceptance band, so a converging iterate lands inside it
-    rather than just outside on either side; a step that leaves the bracket (or a slope
-    that is not negative, near a maximum of ``f``) is replaced by bisection of the bracket.
-    Accepted points stay put and leave the iteration, so each root depends on its own halo
-    only (results must not depend on which halos share a chunk). At most
-    :data:`_ROOT_ITERS` iterations. Returns the accepted points, else the last point known
-    to have ``f >= 0``.
+    Safeguarded Newton (rtsafe, Press et al. 2007, sect. 9.4) from ``s0`` if given (inside
+    the bracket), else by a first step from the ``lo`` end (never accepting ``lo``
+    itself); each step is aimed at the middle of the acceptance band, so a converging
+    iterate lands inside it rather than just outside on either side; a step that leaves the
+    bracket (or a slope that is not negative, near a maximum of ``f``) is replaced by
+    bisection of the bracket. Accepted points stay put and leave the iteration, so each
+    root depends on its own halo only (results must not depend on which halos share a
+    chunk). At most :data:`_ROOT_ITERS` iterations. Returns the accepted points, else the
+    last point known to have ``f >= 0``.
     """
-    f, df, band = fdf(lo, *args)
-    s = lo
+    if s0 is None:
+        f, df, band = fdf(lo, *args)
+        nxt = lo - (f - 0.5 * band) / df
+        s = np.where((nxt > lo) & (nxt < hi), nxt, 0.5 * (lo + hi))
+    else:
+        s = s0
     out = lo.copy()
     act = np.arange(lo.size)                # elements still iterating
     for _ in range(_ROOT_ITERS):
-        nxt = s - (f - 0.5 * band) / df
-        s = np.where((nxt > lo) & (nxt < hi), nxt, 0.5 * (lo + hi))
         f, df, band = fdf(s, *args)
         up = f >= 0.0
         ok = up & (f <= band)
@@ -294,6 +297,8 @@ def _newton(fdf, lo, hi, args):
             args = tuple(x[keep] for x in args)
         lo = np.where(up, s, lo)
         hi = np.where(up, hi, s)
+        nxt = s - (f - 0.5 * band) / df
+        s = np.where((nxt > lo) & (nxt < hi), nxt, 0.5 * (lo + hi))
     out[act] = lo
     return out
 
@@ -308,6 +313,8 @@ def _eddington_end(g0, m0, c: Coefficients, t):
     ``(1 - tol) e / (B M)`` (:data:`_EDD_TOL`), i.e. the reservoir no longer feeds ``e M``."""
     star = (1.0 - _EDD_TOL) * c.edd / (c.bondi_per_gas * m0)   # g* at s = 0
     b = c.keep * c.edd
+    # Newton from the start of the phase (a regula-falsi start was measured to need ~60%
+    # more evaluations here: the gas curve bends towards its end)
     return _newton(_eddington_end_fdf, np.zeros_like(t), t.copy(),
                    (g0, m0, c.inflow, c.loss, b, c.per_unit * c.edd, star))
 
@@ -339,12 +346,19 @@ def _mean_mass(m0, c: Coefficients, gas_integral, edd_growth):
     return np.sqrt(m0 * m1)
 
 
-def _bondi_runaway(g0, m0, c: Coefficients, t, mbar):
-    """Where Bondi growth of the hole lifts ``B g M / e`` to ``1 + tol`` within ``t``."""
+def _bondi_runaway(g0, m0, c: Coefficients, t, mbar, g_t, gi_t):
+    """Where Bondi growth of the hole lifts ``B g M / e`` to ``1 + tol`` within ``t``
+    (``g_t``, ``gi_t``: the gas and its integral after ``t`` with the hole at ``mbar`` in
+    the drain)."""
     lam = c.loss + c.per_unit * c.bondi_per_gas * mbar * mbar
     e_b = (1.0 + _EDD_TOL) * c.edd / c.bondi_per_gas
+    inv_m0, kb = 1.0 / m0, c.keep * c.bondi_per_gas
+    # start at the regula-falsi point of (0, t): f(0) > 0 > f(t) are known (f(t) from the
+    # phase the caller computed); measured to save ~35% of the evaluations
+    f_lo, f_hi = e_b * inv_m0 - g0, e_b * (inv_m0 - kb * gi_t) - g_t
+    s0 = t * np.clip(f_lo / (f_lo - f_hi), 0.0, 1.0)
     return _newton(_bondi_runaway_fdf, np.zeros_like(t), t.copy(),
-                   (g0, 1.0 / m0, c.inflow, lam, c.keep * c.bondi_per_gas, e_b))
+                   (g0, inv_m0, c.inflow, lam, kb, e_b), s0)
 
 
 def _bondi_runaway_fdf(s, g0, inv_m0, inflow, lam, kb, e_b):
@@ -464,18 +478,23 @@ def _advance(gas, metals, m_bh, c: Coefficients, dt, n_steps) -> IntervalResult:
                                 > _EXP_P_TOL * cb.edd) & ~lb)
             if j.size:
                 cj = cb.take(j)
-                tb[j] = _bondi_runaway(gb0[j], mb0[j], cj, tb[j], mb0[j])
+                tb[j] = _bondi_runaway(gb0[j], mb0[j], cj, tb[j], mb0[j], gb[j], gib[j])
                 gb[j], gib[j], _, _ = _bondi_phase(gb0[j], mb0[j], cj, tb[j], mb0[j])
             kt = cb.keep * cb.edd * tb
-            mbar = _mean_mass(mb0, cb, gib, np.exp(kt))
+            ekt = np.exp(kt)
+            mbar = _mean_mass(mb0, cb, gib, ekt)
             # corrector, where the hole's drain on the gas changes by more than 1e-10 over
             # the phase (elsewhere the predictor's gas is already exact to that level)
             s = np.flatnonzero(cb.per_unit * cb.bondi_per_gas * (mbar * mbar - mb0 * mb0) * tb
                                > 1e-10)
-            if s.size:
+            if s.size == tb.size:         # usually all: no gathers
+                _, gis, _, _ = _bondi_phase(gb0, mb0, cb, tb, mbar)
+                mbar = _mean_mass(mb0, cb, gis, ekt)
+                gb, gib, _, _ = _bondi_phase(gb0, mb0, cb, tb, mbar)
+            elif s.size:
                 cs, gs0, ms0, ts = cb.take(s), gb0[s], mb0[s], tb[s]
                 _, gis, _, _ = _bondi_phase(gs0, ms0, cs, ts, mbar[s])
-                mbar[s] = _mean_mass(ms0, cs, gis, np.exp(kt[s]))
+                mbar[s] = _mean_mass(ms0, cs, gis, ekt[s])
                 gb[s], gib[s], _, _ = _bondi_phase(gs0, ms0, cs, ts, mbar[s])
             accb = cb.bondi_per_gas * mbar * mbar * gib
             lam = cb.loss + cb.per_unit * cb.bondi_per_gas * mbar * mbar
