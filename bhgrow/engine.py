@@ -174,6 +174,12 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
     n = forest.n_nodes
     fb = cosmo.fb
     t_snap = cosmo.age_gyr(forest.snapshots.z)
+    # cosmic time by snapshot number (a look-up is cheaper than a search per node)
+    nums = np.asarray(forest.snapshots.snap)
+    t_by_num = None
+    if nums.size and nums.min() >= 0 and nums.max() < 10 * nums.size + 1000:
+        t_by_num = np.zeros(int(nums.max()) + 1)
+        t_by_num[nums] = t_snap
     z_snap = np.asarray(forest.snapshots.z, dtype=float)
     offsets = forest.snap_offsets
     desc = forest.desc_index
@@ -221,7 +227,8 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
         d_sl = desc[sl]
         has_desc = d_sl >= 0
         d0 = np.where(has_desc, d_sl, rows)
-        dts = t_snap[np.searchsorted(offsets, d0, side="right") - 1] - t_snap[k]
+        dts = (t_by_num[forest.snap[d0]] if t_by_num is not None else
+               t_snap[np.searchsorted(offsets, d0, side="right") - 1]) - t_snap[k]
         main = has_desc & (main_prog[d0] == rows)
         smooth = np.where(main, np.maximum(mass_h[d0] - prog_sum[d0], 0.0), 0.0)
         gas[sl] = np.where(new, fb_eff * m, gas[sl])
@@ -297,11 +304,10 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
                                                t_dyn[q], v_c[q], dts[q], metal_flows=False)
             g_sl[q], s_sl[q], z_sl[q] = res.gas, res.stars, res.metals
             outflow += res.outflow_msun.sum()
-        active = step_rows & has_central
         cbh = np.flatnonzero(central)
         cbh = cbh[step_rows[bh.host[cbh] - sl.start]] if cbh.size else cbh
-        if active.any():
-            _grow(model, run, bh, cbh, rows, sl, active, gas, stars, metals, outflow, inflow,
+        if cbh.size:
+            _grow(model, run, bh, cbh, rows, sl, gas, stars, metals, outflow, inflow,
                   t_dyn, v_c, v_esc, r_vir, t_vir, dts, k)
         else:
             bh.last_mdot[cbh] = 0.0
@@ -359,7 +365,7 @@ def _escape_speeds(model, m, z, cosmo, v_esc, loc) -> None:
         v_esc[at] = model.halo.escape_speed_kms(m[at], z, cosmo)
 
 
-def _grow(model, run, bh, cbh, rows, sl, active, gas, stars, metals, outflow, inflow, t_dyn,
+def _grow(model, run, bh, cbh, rows, sl, gas, stars, metals, outflow, inflow, t_dyn,
           v_c, v_esc, r_vir, t_vir, dts, k):
     """Reservoir, accretion and feedback over the interval for halos with a central hole.
 
@@ -367,9 +373,7 @@ def _grow(model, run, bh, cbh, rows, sl, active, gas, stars, metals, outflow, in
     ``n_i`` substeps per halo (:func:`bhgrow.physics.coupled.substeps`, from that halo
     alone, so results never depend on which other halos share its snapshot or chunk).
     """
-    a_rows = np.flatnonzero(active)           # local rows
-    loc = bh.host[cbh] - sl.start              # local row of each central BH
-    hl = a_rows[np.searchsorted(a_rows, loc)]  # local host row of each BH (one central each)
+    hl = bh.host[cbh] - sl.start               # local host row of each BH (one central each)
     hrow = rows[hl]                            # global host row
     h_total = dts[hl]
 

@@ -83,11 +83,11 @@ def start_clocks(bh, idx, new_host, old_host, t_merge, model, run, cosmo, mass_h
     """
     if idx.size == 0:
         return
-    props = model.halo.properties(mass_h[new_host], z_new, cosmo)
+    r_vir, v_c, _ = model.halo.virial(mass_h[new_host], z_new, cosmo)
     u = delay_uniforms(run.seed, bh.bh_id[idx], k)
     parts = model.clock.delay_gyr(mass_h[new_host], mass_h[old_host],
-                                  np.asarray(props.r_vir_kpc, dtype=float),
-                                  np.asarray(props.v_c_kms, dtype=float),
+                                  np.asarray(r_vir, dtype=float),
+                                  np.asarray(v_c, dtype=float),
                                   np.maximum(partner_mass, bh.mass[idx]),
                                   np.minimum(partner_mass, bh.mass[idx]), u)
     bh.t_hmerge[idx] = t_merge
