@@ -115,9 +115,15 @@ def coalesce(bh, sl, t_now, k, gas, stars, v_esc, mass_h, forest, model, run, co
     central_of = np.full(sl.stop - sl.start, -1, dtype=np.int64)
     cen = np.flatnonzero(live & (bh.status == CENTRAL))
     central_of[bh.host[cen] - sl.start] = cen
-    # candidates for triples: the slice's sinking holes (hosts and friction clocks fixed
-    # here; statuses change as ranks are applied). Per-host scratch, reset after each rank.
-    sink_loc, sink_tdf = bh.host[sink] - sl.start, bh.t_df_end[sink]
+    # candidates for triples: the slice's sinking holes in hosts with a coalescence due
+    # (hosts and friction clocks fixed here; statuses change as ranks are applied).
+    # Per-host scratch, reset after each rank.
+    sink_loc = bh.host[sink] - sl.start
+    has_due = np.zeros(sl.stop - sl.start, dtype=bool)
+    has_due[bh.host[due] - sl.start] = True
+    near = has_due[sink_loc]
+    sink, sink_loc = sink[near], sink_loc[near]
+    sink_tdf = bh.t_df_end[sink]
     tc_host = np.full(sl.stop - sl.start, np.nan)
     ev_host = np.full(sl.stop - sl.start, -1, dtype=np.int64)
     z_now = None
