@@ -186,11 +186,12 @@ def _psi(x, e=None):
     return _small(x, (1.0 - (1.0 + x) * e) / (x * x), _series_psi)
 
 
-def _metals(z0, g0, inflow, rate, p, t):
+def _metals(z0, g0, inflow, rate, p, t, e=None):
     """Metals after ``t`` with production ``p g`` and total loss ``rate Z`` when the gas
-    follows ``g(u) = g0 e^{-rate u} + I u phi1(rate u)`` (variation of constants)."""
+    follows ``g(u) = g0 e^{-rate u} + I u phi1(rate u)`` (variation of constants;
+    ``e``: ``e^{-rate t}`` if already known)."""
     x = rate * t
-    e = np.exp(-x)
+    e = np.exp(-x) if e is None else e
     return z0 * e + p * (g0 * t * e + inflow * t * t * _psi(x, e))
 
 
@@ -236,13 +237,14 @@ def _drain_integral(a, b, t):
 
 
 def _bondi_phase(g0, m0, c: Coefficients, t, mbar):
-    """Gas, its integral and the gas accreted over ``t`` with the hole frozen at ``mbar``."""
+    """Gas, its integral and the gas accreted over ``t`` with the hole frozen at ``mbar``,
+    the gas's loss rate ``lam`` (1/Gyr) and ``e^{-lam t}``."""
     cc = c.bondi_per_gas * mbar * mbar
     lam = c.loss + c.per_unit * cc
     e, f1, f2 = _exp_phi12(lam * t)
     g = g0 * e + c.inflow * t * f1
     gi = g0 * t * f1 + c.inflow * t * t * f2
-    return g, gi, cc * gi, lam
+    return g, gi, cc * gi, lam, e
 
 
 def _bondi_switch_time(g0, c: Coefficients, mbar, t):
@@ -472,24 +474,22 @@ def _advance(gas, metals, m_bh, c: Coefficients, dt, n_steps) -> IntervalResult:
             tb = _bondi_switch_time(gb0, cb, mb0, np.minimum(t[ib], hb[ib]))
             if lb.any():
                 tb = np.where(lb, t[ib], tb)
-            gb, gib, _, _ = _bondi_phase(gb0, mb0, cb, tb, mb0)                # predictor
+            gb, gib, _, _, _ = _bondi_phase(gb0, mb0, cb, tb, mb0)                # predictor
             # the hole's own growth lifts the rate to Eddington within the phase
             j = np.flatnonzero((cb.bondi_per_gas * gb * _bondi_mass(mb0, cb, gib)
                                 > _EXP_P_TOL * cb.edd) & ~lb)
             if j.size:
                 cj = cb.take(j)
                 tb[j] = _bondi_runaway(gb0[j], mb0[j], cj, tb[j], mb0[j], gb[j], gib[j])
-                gb[j], gib[j], _, _ = _bondi_phase(gb0[j], mb0[j], cj, tb[j], mb0[j])
+                gb[j], gib[j], _, _, _ = _bondi_phase(gb0[j], mb0[j], cj, tb[j], mb0[j])
             kt = cb.keep * cb.edd * tb
             ekt = np.exp(kt)
             mbar = _mean_mass(mb0, cb, gib, ekt)
             # corrector (for every phase: where the hole's drain hardly changes, selecting
             # the few phases that need none was measured to cost more than it saves)
-            _, gis, _, _ = _bondi_phase(gb0, mb0, cb, tb, mbar)                   # corrector
+            _, gis, _, _, _ = _bondi_phase(gb0, mb0, cb, tb, mbar)                   # corrector
             mbar = _mean_mass(mb0, cb, gis, ekt)
-            gb, gib, _, _ = _bondi_phase(gb0, mb0, cb, tb, mbar)
-            accb = cb.bondi_per_gas * mbar * mbar * gib
-            lam = cb.loss + cb.per_unit * cb.bondi_per_gas * mbar * mbar
+            gb, gib, accb, lam, e_lam = _bondi_phase(gb0, mb0, cb, tb, mbar)
             if lb.any():
                 # no more switches: never above the Eddington-limited growth; gas not
                 # taken stays in the reservoir
@@ -497,7 +497,7 @@ def _advance(gas, metals, m_bh, c: Coefficients, dt, n_steps) -> IntervalResult:
                 over = np.where(lb, np.maximum(accb - cap_b, 0.0), 0.0)
                 accb = accb - over
                 gb = gb + cb.per_unit * over
-            z1[ib] = _metals(z0[ib], gb0, cb.inflow, lam, cb.metal_rate, tb)
+            z1[ib] = _metals(z0[ib], gb0, cb.inflow, lam, cb.metal_rate, tb, e_lam)
             g1[ib], m1[ib], a1[ib], gi1[ib], used[ib] = gb, mb0 + cb.keep * accb, accb, gib, tb
 
         g[todo], z[todo], m[todo] = g1, np.maximum(z1, 0.0), m1
