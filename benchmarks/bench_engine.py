@@ -85,6 +85,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from _measure import best_of, load_note, measure, n_cpus  # noqa: E402
 
+from bhgrow._alloc import keep_freed_memory  # noqa: E402
 from bhgrow.config import from_table  # noqa: E402
 from bhgrow.cosmology import Cosmology  # noqa: E402
 from bhgrow.engine import CENTRAL, HOST_ENDED, SINKING, run_forest  # noqa: E402
@@ -477,6 +478,9 @@ def main() -> int:
     histories = args.histories == "on"
     isolate = not args.no_isolate
 
+    # the engine sets the allocator to reuse freed temporaries at its first call
+    # (bhgrow._alloc); set it here, before the cases fork, so the floor runs with it too
+    keep_freed_memory()
     rows_out = []
     big = None
     if not args.ratios_only:

@@ -53,6 +53,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from . import pairs, rng
+from ._alloc import keep_freed_memory
 from .config import Model, RunSettings
 from .cosmology import Cosmology
 from .physics import accretion as acc
@@ -169,8 +170,15 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
     Returns
     -------
     EngineResult
+
+    Notes
+    -----
+    The first call sets glibc's allocator to reuse freed temporaries instead of mapping
+    fresh pages for each (:func:`bhgrow._alloc.keep_freed_memory`; the environment variable
+    ``BHGROW_SYSTEM_MALLOC=1`` opts out).
     """
     t_start = time.perf_counter()
+    keep_freed_memory()
     n = forest.n_nodes
     fb = cosmo.fb
     t_snap = cosmo.age_gyr(forest.snapshots.z)

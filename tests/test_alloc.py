@@ -1,0 +1,26 @@
+"""The allocator setting the engine applies (bhgrow._alloc): once per process, and never
+where the user opts out."""
+
+from __future__ import annotations
+
+import platform
+import subprocess
+import sys
+
+from bhgrow import _alloc
+
+
+def test_keep_freed_memory_is_applied_once_and_reports_a_bool():
+    first = _alloc.keep_freed_memory()
+    assert isinstance(first, bool)
+    assert _alloc.keep_freed_memory() is first
+    if sys.platform.startswith("linux") and platform.libc_ver()[0] == "glibc":
+        # glibc accepts both values (32 MiB is its largest mmap threshold on 64-bit)
+        assert first
+
+
+def test_opt_out_leaves_the_allocator_alone():
+    code = "from bhgrow import _alloc; print(_alloc.keep_freed_memory())"
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         env={"BHGROW_SYSTEM_MALLOC": "1", "PATH": ""}, check=True)
+    assert out.stdout.strip() == "False"
