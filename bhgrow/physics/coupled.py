@@ -310,12 +310,16 @@ def _eddington_end(g0, m0, c: Coefficients, t):
     ``(1 - tol) e / (B M)`` (:data:`_EDD_TOL`), i.e. the reservoir no longer feeds ``e M``."""
     star = (1.0 - _EDD_TOL) * c.edd / (c.bondi_per_gas * m0)   # g* at s = 0
     b, pe = c.keep * c.edd, c.per_unit * c.edd
-    # first point: the Newton step from the start of the phase, where f and f' of
-    # _eddington_end_fdf are g0 - g* and I - a g0 - P e M0 + b g* (a regula-falsi start was
-    # measured to need ~60% more evaluations here: the gas curve bends towards its end)
+    mid = star * (1.0 + 0.5 * _EDD_TOL / (1.0 - _EDD_TOL))      # middle of the band at s = 0
     lo = np.zeros_like(t)
-    nxt = -(g0 - star - 0.5 * (_EDD_TOL / (1.0 - _EDD_TOL) * star)) / (
-        c.inflow - c.loss * g0 - pe * m0 + b * star)
+    # first point: where the gas, relaxing at rate a towards (I - P e M0) / a with the
+    # drain frozen at its start, reaches the band (the hole grows little over most such
+    # phases); measured: 2.5 evaluations per root instead of 4.5. Where that has no root,
+    # the Newton step from the start (f = g0 - g*, f' = I - a g0 - P e M0 + b g* there).
+    g_eq = (c.inflow - pe * m0) / c.loss
+    nxt = np.log((g0 - g_eq) / (mid - g_eq)) / c.loss
+    newton = -(g0 - mid) / (c.inflow - c.loss * g0 - pe * m0 + b * star)
+    nxt = np.where(np.isfinite(nxt) & (nxt > 0.0), nxt, newton)
     s0 = np.where((nxt > lo) & (nxt < t), nxt, 0.5 * t)
     return _newton(_eddington_end_fdf, lo, t.copy(),
                    (g0, m0, c.inflow, c.loss, b, pe, star), s0)
