@@ -437,47 +437,56 @@ def _advance(gas, metals, m_bh, c: Coefficients, dt, n_steps) -> IntervalResult:
         # the regime of each phase from its start (B g M >= e); switches
         # land inside the tolerance band (a phase ending early leaves the rest to the next)
         edd = (bpg * g0 * m0 >= e_c) & ~last
-        g1, z1, m1, a1, gi1, used = (np.empty_like(g0) for _ in range(6))
 
         # --- Eddington phases: exact; end where the reservoir can no longer feed e M -------
         ie = np.flatnonzero(edd)
+        every = ie.size == t.size         # one regime for all: no subsets to gather
+        if 0 < ie.size < t.size:
+            g1, z1, m1, a1, gi1, used = (np.empty_like(g0) for _ in range(6))
         if ie.size:
-            ce = c.take(ie if todo.size == n else todo[ie])
-            te = t[ie]
-            ge, gie, me = _eddington_gas(g0[ie], m0[ie], ce, te)
+            ce = c if every and todo.size == n else c.take(ie if todo.size == n else todo[ie])
+            ge0, me0, ze0 = (g0, m0, z0) if every else (g0[ie], m0[ie], z0[ie])
+            te = t.copy() if every else t[ie]
+            ge, gie, me = _eddington_gas(ge0, me0, ce, te)
             j = np.flatnonzero(ce.bondi_per_gas * ge * me < _EXP_M_TOL * ce.edd)
             if j.size:
                 cj = ce.take(j)
-                s = _eddington_end(g0[ie][j], m0[ie][j], cj, te[j])
-                ge[j], gie[j], me[j] = _eddington_gas(g0[ie][j], m0[ie][j], cj, s)
+                gj, mj = ge0[j], me0[j]
+                s = _eddington_end(gj, mj, cj, te[j])
+                ge[j], gie[j], me[j] = _eddington_gas(gj, mj, cj, s)
                 te[j] = s
             ge = np.maximum(ge, 0.0)      # round-off at the switch
             # gas taken, M_0 (e^{k e t} - 1) / k without cancellation, and the hole from it
-            acc_e = m0[ie] * np.expm1(ce.keep * ce.edd * te) / ce.keep
-            me = m0[ie] + ce.keep * acc_e
+            acc_e = me0 * np.expm1(ce.keep * ce.edd * te) / ce.keep
+            me = me0 + ce.keep * acc_e
             # metals: accretion and outflows remove gas at its metallicity mu = Z/g, so
             # d mu/dt = p - mu I/g whatever the hole does; exact for I = 0 (closed box,
             # Tinsley 1980), with the inflow's dilution at the phase-mean gas otherwise
-            ge0 = g0[ie]
-            mu0 = np.divide(z0[ie], ge0, out=np.zeros(ie.size), where=ge0 > 0)
+            mu0 = np.divide(ze0, ge0, out=np.zeros(ie.size), where=ge0 > 0)
             x = np.where(gie > 0, ce.inflow * te * te / gie, 0.0)
             mu1 = mu0 * np.exp(-x) + ce.metal_rate * te * _phi1(x)
             # never above the two exact bounds: the closed-box metallicity, and the metals
             # there were plus those made
-            z1[ie] = np.minimum(mu1 * ge, z0[ie] + ce.metal_rate * gie)
-            g1[ie], m1[ie], a1[ie], gi1[ie], used[ie] = ge, me, acc_e, gie, te
+            ze1 = np.minimum(mu1 * ge, ze0 + ce.metal_rate * gie)
+            if every:
+                g1, z1, m1, a1, gi1, used = ge, ze1, me, acc_e, gie, te
+            else:
+                z1[ie] = ze1
+                g1[ie], m1[ie], a1[ie], gi1[ie], used[ie] = ge, me, acc_e, gie, te
 
         # --- Bondi phases: hole frozen at the geometric mean of its end masses -----------
         ib = np.flatnonzero(~edd)
+        every = ib.size == t.size
         if ib.size:
-            cb = c.take(ib if todo.size == n else todo[ib])
-            gb0, mb0, lb = g0[ib], m0[ib], last[ib]
+            cb = c if every and todo.size == n else c.take(ib if todo.size == n else todo[ib])
+            gb0, mb0, zb0, lb, tl, hl = (g0, m0, z0, last, t, hb) if every else (
+                g0[ib], m0[ib], z0[ib], last[ib], t[ib], hb[ib])
             # at most one Bondi step, ending early where the gas, rising towards its
             # equilibrium, lifts the rate to Eddington; the last phase of a halo takes all
             # that is left
-            tb = _bondi_switch_time(gb0, cb, mb0, np.minimum(t[ib], hb[ib]))
+            tb = _bondi_switch_time(gb0, cb, mb0, np.minimum(tl, hl))
             if lb.any():
-                tb = np.where(lb, t[ib], tb)
+                tb = np.where(lb, tl, tb)
             gb, gib, _, _, _ = _bondi_phase(gb0, mb0, cb, tb, mb0)                # predictor
             # the hole's own growth lifts the rate to Eddington within the phase
             j = np.flatnonzero((cb.bondi_per_gas * gb * _bondi_mass(mb0, cb, gib)
@@ -501,16 +510,30 @@ def _advance(gas, metals, m_bh, c: Coefficients, dt, n_steps) -> IntervalResult:
                 over = np.where(lb, np.maximum(accb - cap_b, 0.0), 0.0)
                 accb = accb - over
                 gb = gb + cb.per_unit * over
-            z1[ib] = _metals(z0[ib], gb0, cb.inflow, lam, cb.metal_rate, tb, e_lam)
-            g1[ib], m1[ib], a1[ib], gi1[ib], used[ib] = gb, mb0 + cb.keep * accb, accb, gib, tb
+            zb1 = _metals(zb0, gb0, cb.inflow, lam, cb.metal_rate, tb, e_lam)
+            if every:
+                g1, z1, m1, a1, gi1, used = gb, zb1, mb0 + cb.keep * accb, accb, gib, tb
+            else:
+                z1[ib] = zb1
+                g1[ib], m1[ib], a1[ib], gi1[ib], used[ib] = (gb, mb0 + cb.keep * accb, accb,
+                                                            gib, tb)
 
-        g[todo], z[todo], m[todo] = g1, np.maximum(z1, 0.0), m1
-        acc[todo] += a1
-        gint[todo] += gi1
         rest = t - used
-        left[todo] = np.where((rest > 1e-12 * t) & ~last, rest, 0.0)
-        count[todo] += 1.0
-        todo = todo[left[todo] > 0]
+        rest = np.where((rest > 1e-12 * t) & ~last, rest, 0.0)
+        if todo.size == n:            # every halo: whole arrays, no scatter
+            g, z, m = g1, np.maximum(z1, 0.0), m1
+            acc += a1
+            gint += gi1
+            left = rest
+            count += 1.0
+            todo = np.flatnonzero(left > 0)
+        else:
+            g[todo], z[todo], m[todo] = g1, np.maximum(z1, 0.0), m1
+            acc[todo] += a1
+            gint[todo] += gi1
+            left[todo] = rest
+            count[todo] += 1.0
+            todo = todo[rest > 0]
 
     stars = c.lock * gint
     wind = (c.loss - c.lock) * gint
