@@ -91,6 +91,8 @@ class BlackHoles:
     t_df_end: np.ndarray = field(default_factory=lambda: np.zeros(0))   # reaches nucleus, Gyr
     t_c: np.ndarray = field(default_factory=lambda: np.zeros(0))        # coalescence, Gyr
     radiated: np.ndarray = field(default_factory=lambda: np.zeros(0))   # lost to GWs, Msun
+    #: random-stream key, ``rng.stream_keys(seed, bh_id)`` (the seeding node's key)
+    stream_key: np.ndarray = field(default_factory=lambda: np.zeros(0, np.uint64))
 
     def __len__(self) -> int:
         return int(self.bh_id.size)
@@ -226,7 +228,7 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
         # escape speeds (coalescence kicks, feedback) only where black holes are
         v_esc = np.zeros(rows.size)
         if len(bh):
-            _escape_speeds(model, m, z, cosmo, v_esc, bh.host[(bh.host >= sl.start)
+            _escape_speeds(model, m, v_c, z, cosmo, v_esc, bh.host[(bh.host >= sl.start)
                                                               & (bh.host < sl.stop)] - sl.start)
         fb_eff = np.asarray(model.reionization.baryon_fraction(m, z, fb), dtype=float)
         new = n_prog[sl] == 0
@@ -259,11 +261,11 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
                                 where=gas[sl] > 0)
             j_lw = forest.extra["j_lw"][sl] if "j_lw" in forest.extra else np.full(rows.size,
                                                                                    np.nan)
+            keys = rng.stream_keys(run.seed, forest.node_id[sl])
             inp = sd.SeedingInputs(m_halo_msun=m, z=np.full(rows.size, z), t_vir_k=t_vir,
                                    pristine=~polluted[sl], metallicity=metal_z,
                                    n_h_cm3=np.asarray(n_h, dtype=float), gas_msun=gas[sl],
-                                   j_lw=j_lw, has_bh=has_central,
-                                   keys=rng.stream_keys(run.seed, forest.node_id[sl]))
+                                   j_lw=j_lw, has_bh=has_central, keys=keys)
             code, seed_mass = sd.apply_channels(channels, inp)
             code = np.asarray(code)
             fire = np.flatnonzero(code > 0)
@@ -278,11 +280,12 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
                           last_mdot=np.zeros(fire.size), end_z=np.full(fire.size, z),
                           host_mass=m[fire], t_hmerge=np.full(fire.size, np.nan),
                           t_df_end=np.full(fire.size, np.nan),
-                          t_c=np.full(fire.size, np.nan), radiated=np.zeros(fire.size))
+                          t_c=np.full(fire.size, np.nan), radiated=np.zeros(fire.size),
+                          stream_key=keys[fire])
                 for c, cnt in zip(*np.unique(code[fire], return_counts=True)):
                     n_seeds[CHANNEL_NAMES[int(c)]] += int(cnt)
                 has_central[fire] = True
-                _escape_speeds(model, m, z, cosmo, v_esc, fire)
+                _escape_speeds(model, m, v_c, z, cosmo, v_esc, fire)
                 in_slice = np.r_[in_slice, np.ones(fire.size, bool)]
                 central = np.r_[central, np.ones(fire.size, bool)]
 
@@ -364,13 +367,13 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
                         mergers=mergers)
 
 
-def _escape_speeds(model, m, z, cosmo, v_esc, loc) -> None:
+def _escape_speeds(model, m, v_c, z, cosmo, v_esc, loc) -> None:
     """Fill ``v_esc`` (km/s) at the local rows ``loc`` (repeats allowed)."""
     if loc.size:
         need = np.zeros(v_esc.size, dtype=bool)
         need[loc] = True
         at = np.flatnonzero(need)
-        v_esc[at] = model.halo.escape_speed_kms(m[at], z, cosmo)
+        v_esc[at] = model.halo.escape_speed_kms(m[at], z, cosmo, v_c[at])
 
 
 def _grow(model, run, bh, cbh, rows, sl, gas, stars, metals, outflow, inflow, t_dyn,
@@ -388,7 +391,7 @@ def _grow(model, run, bh, cbh, rows, sl, gas, stars, metals, outflow, inflow, t_
     # one accretion episode per interval: its disc orientation (chaotic mode) and hence the
     # radiative efficiency are fixed over the interval; the spin is updated once at its end
     # (Bardeen's coherent invariant makes that exact for any number of substeps)
-    u = rng.uniform(rng.stream_keys(run.seed, bh.bh_id[cbh]), k, _P_SPIN)
+    u = rng.uniform(bh.stream_key[cbh], k, _P_SPIN)
     eps = np.asarray(model.efficiency.efficiency(model.spin.episode_spin(bh.spin[cbh], u)),
                      dtype=float)
     loss, lock, metal_rate = model.star_formation.rates(t_dyn[hl], v_c[hl])

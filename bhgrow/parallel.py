@@ -60,7 +60,8 @@ from .trees.forest import Forest
 # backend)
 EXECUTION_KEYS = ("workers", "dask_scheduler", "chunk_nodes")
 CHECKPOINT_FORMAT = "bhgrow-checkpoint"
-CHECKPOINT_SCHEMA = 1
+#: layout of the pickled chunk results (2: black-hole tables carry their stream keys)
+CHECKPOINT_SCHEMA = 2
 DASK_HINT = "pip install -e '.[dask]'"
 
 
@@ -329,6 +330,9 @@ class Checkpoint:
                                    f"--overwrite (without --resume) to start afresh",
                                    source=str(manifest), rule="bad_checkpoint") from None
         changed = [k.removesuffix("_sha256") for k, v in digests.items() if info.get(k) != v]
+        if info.get("schema_version") != CHECKPOINT_SCHEMA:
+            changed.insert(0, f"chunk-result layout ({info.get('schema_version')}; this bhgrow "
+                              f"writes {CHECKPOINT_SCHEMA})")
         if changed:
             raise BhgrowInputError(
                 f"{directory}: checkpoint made with different {' and '.join(changed)}; it "

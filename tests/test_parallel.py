@@ -238,6 +238,25 @@ def test_resume_refuses_a_checkpoint_of_another_config(tmp_path, small, monkeypa
     _same_products(small["ref"], out)
 
 
+def test_resume_refuses_a_checkpoint_of_another_result_layout(tmp_path, small, monkeypatch,
+                                                              capsys):
+    # chunk results are pickled engine results: a checkpoint written with another layout
+    # (an older bhgrow) must not be merged into this one's
+    out = tmp_path / "run"
+    args = ["run", str(small["cfg"]), "--trees", str(small["trees"]), "-o", str(out),
+            "--no-progress"]
+    _counting(monkeypatch, stop_after=1)
+    assert main(args) == 130
+    monkeypatch.undo()
+    manifest = Checkpoint.directory_for(out) / "manifest.json"
+    info = json.loads(manifest.read_text())
+    info["schema_version"] = 1
+    manifest.write_text(json.dumps(info))
+    assert main(args + ["--resume"]) == 2
+    err = capsys.readouterr().err
+    assert "chunk-result layout (1" in err and "--overwrite" in err and "Traceback" not in err
+
+
 @pytest.mark.skipif(not sys.platform.startswith("linux"), reason="fork start method")
 def test_killed_worker_loses_only_chunks_in_flight(tmp_path, small, monkeypatch, capsys):
     out = tmp_path / "run"

@@ -468,14 +468,16 @@ class HaloStructure:
         z = np.asarray(z, dtype=np.float64)
         return self._virial(m, z, cosmo)[1:]
 
-    def escape_speed_kms(self, m_vir_msun, z, cosmo):
+    def escape_speed_kms(self, m_vir_msun, z, cosmo, v_c_kms=None):
         """Escape speed from the halo centre, km/s: the ``v_esc_kms`` field of
         :meth:`properties` alone (:func:`nfw_escape_speed_central_kms`).
 
-        Parameters and units as for :meth:`properties`; returns a float64 array.
+        Parameters and units as for :meth:`properties`; ``v_c_kms``, the circular velocity
+        from :meth:`virial` if already known. Returns a float64 array.
         """
         m = np.asarray(m_vir_msun, dtype=np.float64)
         z = np.asarray(z, dtype=np.float64)
-        v_c = self._virial(m, z, cosmo)[2]
+        v_c = self._virial(m, z, cosmo)[2] if v_c_kms is None else np.asarray(
+            v_c_kms, dtype=np.float64)
         conc = CONCENTRATION_RELATIONS[self.concentration](m, z, cosmo.h)
         return nfw_escape_speed_central_kms(v_c, conc)

@@ -113,6 +113,7 @@ def test_virial_and_escape_speed_equal_the_fields_of_properties(cosmo, z):
     v_esc = hs.escape_speed_kms(MASSES_MSUN, z, cosmo)
     np.testing.assert_array_equal(v_esc, props.v_esc_kms)
     np.testing.assert_array_equal(hs.escape_speed_kms(MASSES_MSUN[1:2], z, cosmo), v_esc[1:2])
+    np.testing.assert_array_equal(hs.escape_speed_kms(MASSES_MSUN, z, cosmo, v_c), v_esc)
 
 
 @pytest.mark.parametrize("z", [0.0, 2.0, 10.0])
