@@ -236,21 +236,27 @@ def _drain_integral(a, b, t):
     return t * t * (b * q + a * _phi2(a * t)) / (a + b)
 
 
-def _bondi_phase(g0, m0, c: Coefficients, t, mbar):
+def _bondi_phase(g0, m0, c: Coefficients, t, mbar, lam=None):
     """Gas, its integral and the gas accreted over ``t`` with the hole frozen at ``mbar``,
-    the gas's loss rate ``lam`` (1/Gyr) and ``e^{-lam t}``."""
+    the gas's loss rate ``lam`` (1/Gyr; given if already known) and ``e^{-lam t}``."""
     cc = c.bondi_per_gas * mbar * mbar
-    lam = c.loss + c.per_unit * cc
+    lam = c.loss + c.per_unit * cc if lam is None else lam
     e, f1, f2 = _exp_phi12(lam * t)
     g = g0 * e + c.inflow * t * f1
     gi = g0 * t * f1 + c.inflow * t * t * f2
     return g, gi, cc * gi, lam, e
 
 
-def _bondi_switch_time(g0, c: Coefficients, mbar, t):
-    """Time at which gas rising towards its Bondi equilibrium reaches ``e / (B mbar)``."""
-    cc = c.bondi_per_gas * mbar * mbar
-    lam = c.loss + c.per_unit * cc
+def _bondi_gas_integral(g0, c: Coefficients, t, mbar):
+    """The gas integral of :func:`_bondi_phase` alone."""
+    lam = c.loss + c.per_unit * (c.bondi_per_gas * mbar * mbar)
+    _, f1, f2 = _exp_phi12(lam * t)
+    return g0 * t * f1 + c.inflow * t * t * f2
+
+
+def _bondi_switch_time(g0, c: Coefficients, mbar, t, lam):
+    """Time at which gas rising towards its Bondi equilibrium reaches ``e / (B mbar)``
+    (``lam``: the gas's loss rate with the hole at ``mbar`` in the drain, 1/Gyr)."""
     g_eq = c.inflow / lam
     g_star = c.edd / (c.bondi_per_gas * mbar)
     rises = (g_eq > g_star) & (g0 < g_star)
@@ -341,15 +347,16 @@ def _bondi_mass(m0, c: Coefficients, gas_integral):
     return m0 / np.maximum(1.0 - d, 1e-12)
 
 
-def _mean_mass(m0, c: Coefficients, gas_integral, edd_growth):
+def _mean_mass(m0, c: Coefficients, gas_integral, edd_growth, m1=None):
     """``sqrt(M_0 M_1)`` for Bondi growth, ``M_1`` capped at Eddington growth
-    (``edd_growth = e^{k e t}`` over the phase).
+    (``edd_growth = e^{k e t}`` over the phase; ``m1``: the Bondi-grown mass
+    :func:`_bondi_mass` if already known).
 
     With the hole frozen at this mass in the drain, the gas it takes, ``B Mbar^2 int g``,
     equals the Bondi growth ``(M_1 - M_0) / k`` exactly.
     """
-    m1 = np.minimum(_bondi_mass(m0, c, gas_integral), m0 * edd_growth)
-    return np.sqrt(m0 * m1)
+    m1 = _bondi_mass(m0, c, gas_integral) if m1 is None else m1
+    return np.sqrt(m0 * np.minimum(m1, m0 * edd_growth))
 
 
 def _bondi_runaway(g0, m0, c: Coefficients, t, mbar, g_t, gi_t):
@@ -484,24 +491,26 @@ def _advance(gas, metals, m_bh, c: Coefficients, dt, n_steps) -> IntervalResult:
             # at most one Bondi step, ending early where the gas, rising towards its
             # equilibrium, lifts the rate to Eddington; the last phase of a halo takes all
             # that is left
-            tb = _bondi_switch_time(gb0, cb, mb0, np.minimum(tl, hl))
+            lam0 = cb.loss + cb.per_unit * (cb.bondi_per_gas * mb0 * mb0)
+            tb = _bondi_switch_time(gb0, cb, mb0, np.minimum(tl, hl), lam0)
             if lb.any():
                 tb = np.where(lb, tl, tb)
-            gb, gib, _, _, _ = _bondi_phase(gb0, mb0, cb, tb, mb0)                # predictor
+            gb, gib, _, _, _ = _bondi_phase(gb0, mb0, cb, tb, mb0, lam0)          # predictor
             # the hole's own growth lifts the rate to Eddington within the phase
-            j = np.flatnonzero((cb.bondi_per_gas * gb * _bondi_mass(mb0, cb, gib)
-                                > _EXP_P_TOL * cb.edd) & ~lb)
+            m1b = _bondi_mass(mb0, cb, gib)
+            j = np.flatnonzero((cb.bondi_per_gas * gb * m1b > _EXP_P_TOL * cb.edd) & ~lb)
             if j.size:
                 cj = cb.take(j)
-                tb[j] = _bondi_runaway(gb0[j], mb0[j], cj, tb[j], mb0[j], gb[j], gib[j])
-                gb[j], gib[j], _, _, _ = _bondi_phase(gb0[j], mb0[j], cj, tb[j], mb0[j])
+                gj, mj = gb0[j], mb0[j]
+                tb[j] = _bondi_runaway(gj, mj, cj, tb[j], mj, gb[j], gib[j])
+                gb[j], gib[j], _, _, _ = _bondi_phase(gj, mj, cj, tb[j], mj)
+                m1b[j] = _bondi_mass(mj, cj, gib[j])
             kt = cb.keep * cb.edd * tb
             ekt = np.exp(kt)
-            mbar = _mean_mass(mb0, cb, gib, ekt)
+            mbar = _mean_mass(mb0, cb, gib, ekt, m1b)
             # corrector (for every phase: where the hole's drain hardly changes, selecting
             # the few phases that need none was measured to cost more than it saves)
-            _, gis, _, _, _ = _bondi_phase(gb0, mb0, cb, tb, mbar)                   # corrector
-            mbar = _mean_mass(mb0, cb, gis, ekt)
+            mbar = _mean_mass(mb0, cb, _bondi_gas_integral(gb0, cb, tb, mbar), ekt)
             gb, gib, accb, lam, e_lam = _bondi_phase(gb0, mb0, cb, tb, mbar)
             if lb.any():
                 # no more switches: never above the Eddington-limited growth; gas not
