@@ -147,14 +147,16 @@ def _series_phi2(v):
         -1.0 / 5040 + v / 40320)))))
 
 
-def _phi1(x):
-    """``(1 - e^-x) / x`` (1 at 0)."""
-    return _small(x, (1.0 - np.exp(-x)) / x, _series_phi1)
+def _phi1(x, e=None):
+    """``(1 - e^-x) / x`` (1 at 0; ``e``: ``e^-x`` if already known)."""
+    e = np.exp(-x) if e is None else e
+    return _small(x, (1.0 - e) / x, _series_phi1)
 
 
-def _phi2(x):
-    """``(x - 1 + e^-x) / x^2`` (1/2 at 0)."""
-    return _small(x, (x - 1.0 + np.exp(-x)) / (x * x), _series_phi2)
+def _phi2(x, e=None):
+    """``(x - 1 + e^-x) / x^2`` (1/2 at 0; ``e``: ``e^-x`` if already known)."""
+    e = np.exp(-x) if e is None else e
+    return _small(x, (x - 1.0 + e) / (x * x), _series_phi2)
 
 
 def _exp_phi12(x):
@@ -196,8 +198,8 @@ def _metals(z0, g0, inflow, rate, p, t, e=None):
 
 
 def _eddington_gas_at(g0, m0, inflow, a, b, pe, t):
-    """Gas after ``t`` of an Eddington phase (exact), ``e^{bt}`` and ``phi1(a t)``
-    (``a``: loss rate, ``b = k e``, ``pe = P e``)."""
+    """Gas after ``t`` of an Eddington phase (exact), ``e^{bt}``, ``phi1(a t)`` and
+    ``e^{-at}`` (``a``: loss rate, ``b = k e``, ``pe = P e``)."""
     at = a * t
     e_at = np.exp(-at)
     f1a = _small(at, (1.0 - e_at) / at, _series_phi1)
@@ -205,35 +207,39 @@ def _eddington_gas_at(g0, m0, inflow, a, b, pe, t):
     # variation of constants for dg/dt = I - a g - P e M_0 e^{bt}: the forcing integrates
     # to t e^{bt} phi1((a + b) t)
     g = g0 * e_at + inflow * t * f1a - pe * m0 * t * ebt * _phi1(at + b * t)
-    return g, ebt, f1a
+    return g, ebt, f1a, e_at
 
 
 def _eddington_state(g0, m0, c: Coefficients, t):
     """Gas and hole mass after ``t`` of an Eddington phase (exact), and ``phi1(a t)``."""
-    g, ebt, f1a = _eddington_gas_at(g0, m0, c.inflow, c.loss, c.keep * c.edd,
-                                    c.per_unit * c.edd, t)
+    g, ebt, f1a, _ = _eddington_gas_at(g0, m0, c.inflow, c.loss, c.keep * c.edd,
+                                       c.per_unit * c.edd, t)
     return g, m0 * ebt, f1a
 
 
 def _eddington_gas(g0, m0, c: Coefficients, t):
     """Gas, its time integral and the hole mass after ``t`` of an Eddington phase (exact)."""
-    g, m, f1a = _eddington_state(g0, m0, c, t)
     a, b = c.loss, c.keep * c.edd
-    gi = (g0 * t * f1a + c.inflow * t * t * _phi2(a * t)
-          - c.per_unit * c.edd * m0 * _drain_integral(a, b, t))
-    return g, gi, m
+    g, ebt, f1a, e_at = _eddington_gas_at(g0, m0, c.inflow, a, b, c.per_unit * c.edd, t)
+    f2a = _phi2(a * t, e_at)
+    gi = (g0 * t * f1a + c.inflow * t * t * f2a
+          - c.per_unit * c.edd * m0 * _drain_integral(a, b, t, ebt, f2a))
+    return g, gi, m0 * ebt
 
 
-def _drain_integral(a, b, t):
+def _drain_integral(a, b, t, ebt=None, f2a=None):
     """``int_0^t (e^{bu} - e^{-au}) / (a + b) du`` for a >= 0, b > 0 (no cancellation).
 
-    Equals ``t^2 [b q(bt) + a phi2(at)] / (a + b)`` with ``q(x) = (e^x - 1 - x) / x^2``.
+    Equals ``t^2 [b q(bt) + a phi2(at)] / (a + b)`` with ``q(x) = (e^x - 1 - x) / x^2``
+    (``ebt``, ``f2a``: ``e^{bt}`` and ``phi2(at)`` if already known).
     """
     bt = b * t
+    ebt = np.exp(bt) if ebt is None else ebt
+    f2a = _phi2(a * t) if f2a is None else f2a
     # q(x) = (e^x - 1 - x) / x^2 = sum_k x^k / (k + 2)!
-    q = _small(bt, (np.exp(bt) - 1.0 - bt) / (bt * bt), lambda v: 0.5 + v * (1.0 / 6 + v * (
+    q = _small(bt, (ebt - 1.0 - bt) / (bt * bt), lambda v: 0.5 + v * (1.0 / 6 + v * (
         1.0 / 24 + v * (1.0 / 120 + v * (1.0 / 720 + v * (1.0 / 5040 + v / 40320))))))
-    return t * t * (b * q + a * _phi2(a * t)) / (a + b)
+    return t * t * (b * q + a * f2a) / (a + b)
 
 
 def _bondi_phase(g0, m0, c: Coefficients, t, mbar, lam=None):
@@ -333,7 +339,7 @@ def _eddington_end(g0, m0, c: Coefficients, t):
 
 def _eddington_end_fdf(s, g0, m0, inflow, a, b, pe, star):
     # M = M_0 e^{bs} and g* = star e^{-bs}
-    g, ebt, _ = _eddington_gas_at(g0, m0, inflow, a, b, pe, s)
+    g, ebt, _, _ = _eddington_gas_at(g0, m0, inflow, a, b, pe, s)
     gs = star / ebt
     # dg/dt = I - a g - P e M (Eddington phase); d g*/dt = -b g*; accepted where the rate
     # is within [1 - tol, 1] of Eddington
@@ -471,7 +477,8 @@ def _advance(gas, metals, m_bh, c: Coefficients, dt, n_steps) -> IntervalResult:
             # Tinsley 1980), with the inflow's dilution at the phase-mean gas otherwise
             mu0 = np.divide(ze0, ge0, out=np.zeros(ie.size), where=ge0 > 0)
             x = np.where(gie > 0, ce.inflow * te * te / gie, 0.0)
-            mu1 = mu0 * np.exp(-x) + ce.metal_rate * te * _phi1(x)
+            e_x = np.exp(-x)
+            mu1 = mu0 * e_x + ce.metal_rate * te * _phi1(x, e_x)
             # never above the two exact bounds: the closed-box metallicity, and the metals
             # there were plus those made
             ze1 = np.minimum(mu1 * ge, ze0 + ce.metal_rate * gie)
