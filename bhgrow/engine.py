@@ -348,12 +348,17 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
         if ud.size:
             bh_in = np.bincount(bh.host[moved] - lo, weights=bh.mass[moved],
                                 minlength=span)[ud - lo] if moved.size else 0.0
-            excess = gas[ud] + stars[ud] + bh_in - fb * mass_h[ud]
-            cut = np.clip(excess, 0.0, gas[ud])
-            metals[ud] *= np.divide(gas[ud] - cut, gas[ud], out=np.zeros(ud.size),
-                                    where=gas[ud] > 0)    # stripped gas takes its metals
-            gas[ud] -= cut
-            stripped += cut.sum()
+            g_ud = gas[ud]
+            excess = g_ud + stars[ud] + bh_in - fb * mass_h[ud]
+            # only where there is something to strip (or no gas left to hold metals)
+            sel = np.flatnonzero((excess > 0.0) | (g_ud <= 0.0))
+            if sel.size:
+                us, gs = ud[sel], g_ud[sel]
+                cut = np.clip(excess[sel], 0.0, gs)
+                metals[us] *= np.divide(gs - cut, gs, out=np.zeros(sel.size),
+                                        where=gs > 0)    # stripped gas takes its metals
+                gas[us] = gs - cut
+                stripped += cut.sum()
 
     # --- end: ledger and baryon check ---------------------------------------------------------
     ledger = _ledger(bh, forest)
