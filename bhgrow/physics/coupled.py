@@ -24,7 +24,9 @@ The system is solved *piecewise in closed form* (:func:`advance`), not by small 
   hole takes ``B Mbar^2 int g dt``. ``Mbar`` is the geometric mean of the masses at the
   start and end of the phase (predictor-corrector): for a reservoir in equilibrium this is
   exact, because ``1/M`` falls linearly in Bondi growth (Bondi 1952) and then
-  ``int M^2 dt = M_0 M_1 t``. The phase ends where the gas (rising towards its equilibrium)
+  ``int M^2 dt = M_0 M_1 t``. The predictor is the hole frozen at its starting mass in
+  the first Bondi step of an interval, and the previous step's growth rate in later ones
+  (one evaluation fewer; steps that may reach the Eddington rate take the first kind). The phase ends where the gas (rising towards its equilibrium)
   or the hole's mass (growing) makes the Bondi rate reach the Eddington rate, or at the end.
 
 Only the frozen ``Mbar`` of Bondi phases is an approximation, so the step limit
@@ -75,6 +77,9 @@ _EDD_TOL = 1e-3
 _EXP_M_TOL, _EXP_P_TOL = np.exp(-_EDD_TOL), np.exp(_EDD_TOL)
 #: rise of the hole's share of the reservoir's loss rate per step, per unit max_dlnm
 _DRAIN_SHARE = 0.1
+#: a later Bondi step ending within this factor of the Eddington rate takes the full
+#: predictor-corrector path (its runaway test needs the predictor at the starting mass)
+_RUNAWAY_MARGIN = float(np.exp(-0.05))
 
 
 class Coefficients(NamedTuple):
@@ -444,6 +449,9 @@ def _advance(gas, metals, m_bh, c: Coefficients, dt, n_steps) -> IntervalResult:
     count = np.zeros(n)
     acc = np.zeros(n)
     gint = np.zeros(n)
+    # ln-growth rate of each halo's last Bondi phase, 1/Gyr (NaN: none yet); it predicts
+    # the hole's mean mass in the next Bondi step of the same interval
+    rate = np.full(n, np.nan)
     todo = np.flatnonzero(left > 0)
     while todo.size:
         if todo.size == n:            # usually the first phase: no gathers
@@ -509,22 +517,51 @@ def _advance(gas, metals, m_bh, c: Coefficients, dt, n_steps) -> IntervalResult:
             tb = _bondi_switch_time(gb0, cb, mb0, np.minimum(tl, hl), lam0)
             if lb.any():
                 tb = np.where(lb, tl, tb)
-            gb, gib, _, _, _ = _bondi_phase(gb0, mb0, cb, tb, mb0, lam0)          # predictor
+            kt = cb.keep * cb.edd * tb
+            ekt = np.exp(kt)
+            idx_b = ib if todo.size == n else todo[ib]
+            rb = rate[idx_b]
+            guess = np.isfinite(rb) & ~lb
+            if guess.any():
+                # a later Bondi step: the hole's mean mass predicted from the previous step's
+                # growth rate, then one correction (two evaluations instead of three)
+                m_pred = np.sqrt(mb0 * np.minimum(mb0 * np.exp(np.where(guess, rb, 0.0) * tb),
+                                                  mb0 * ekt))
+                m_first = np.where(guess, m_pred, mb0)
+                gb, gib, _, _, _ = _bondi_phase(gb0, mb0, cb, tb, m_first)
+                m1b = _bondi_mass(mb0, cb, gib)
+                # near a runaway (within 5% of Eddington at the end), take the full path
+                near = guess & (cb.bondi_per_gas * gb * m1b > _RUNAWAY_MARGIN * cb.edd)
+                if near.any():
+                    q = np.flatnonzero(near)
+                    cq = cb.take(q)
+                    gb[q], gib[q], _, _, _ = _bondi_phase(gb0[q], mb0[q], cq, tb[q], mb0[q])
+                    m1b[q] = _bondi_mass(mb0[q], cq, gib[q])
+                    guess = guess & ~near
+            else:
+                gb, gib, _, _, _ = _bondi_phase(gb0, mb0, cb, tb, mb0, lam0)          # predictor
+                m1b = _bondi_mass(mb0, cb, gib)
             # the hole's own growth lifts the rate to Eddington within the phase
-            m1b = _bondi_mass(mb0, cb, gib)
-            j = np.flatnonzero((cb.bondi_per_gas * gb * m1b > _EXP_P_TOL * cb.edd) & ~lb)
+            j = np.flatnonzero((cb.bondi_per_gas * gb * m1b > _EXP_P_TOL * cb.edd) & ~lb
+                               & ~guess)
             if j.size:
                 cj = cb.take(j)
                 gj, mj = gb0[j], mb0[j]
                 tb[j] = _bondi_runaway(gj, mj, cj, tb[j], mj, gb[j], gib[j])
+                kt[j] = cj.keep * cj.edd * tb[j]
+                ekt[j] = np.exp(kt[j])
                 gb[j], gib[j], _, _, _ = _bondi_phase(gj, mj, cj, tb[j], mj)
                 m1b[j] = _bondi_mass(mj, cj, gib[j])
-            kt = cb.keep * cb.edd * tb
-            ekt = np.exp(kt)
             mbar = _mean_mass(mb0, cb, gib, ekt, m1b)
-            # corrector (for every phase: where the hole's drain hardly changes, selecting
-            # the few phases that need none was measured to cost more than it saves)
-            mbar = _mean_mass(mb0, cb, _bondi_gas_integral(gb0, cb, tb, mbar), ekt)
+            # corrector for first steps (for every such phase: where the hole's drain hardly
+            # changes, selecting the few phases that need none cost more than it saves)
+            op = np.flatnonzero(~guess)
+            if op.size == tb.size:
+                mbar = _mean_mass(mb0, cb, _bondi_gas_integral(gb0, cb, tb, mbar), ekt)
+            elif op.size:
+                co = cb.take(op)
+                mbar[op] = _mean_mass(mb0[op], co, _bondi_gas_integral(gb0[op], co, tb[op],
+                                                                       mbar[op]), ekt[op])
             gb, gib, accb, lam, e_lam = _bondi_phase(gb0, mb0, cb, tb, mbar)
             if lb.any():
                 # no more switches: never above the Eddington-limited growth; gas not
@@ -534,6 +571,9 @@ def _advance(gas, metals, m_bh, c: Coefficients, dt, n_steps) -> IntervalResult:
                 accb = accb - over
                 gb = gb + cb.per_unit * over
             zb1 = _metals(zb0, gb0, cb.inflow, lam, cb.metal_rate, tb, e_lam)
+            pos = tb > 0
+            rate[idx_b] = np.where(pos, np.log1p(cb.keep * accb / mb0) / np.where(pos, tb, 1.0),
+                                   np.nan)
             if every:
                 g1, z1, m1, a1, gi1, used = gb, zb1, mb0 + cb.keep * accb, accb, gib, tb
             else:
