@@ -79,9 +79,10 @@ def plan_chunks(nodes_per_forest, max_nodes: int, n_workers: int = 1, *,
     max_nodes : int
         Largest chunk, in nodes (>= 1); a single forest above it forms a chunk of its own.
     n_workers : int
-        Workers that will run the chunks in parallel (>= 1). With fewer than
-        ``n_workers * max_nodes`` nodes the target chunk size drops to ``total / n_workers``
-        so every worker gets a share.
+        Workers that will run the chunks in parallel (>= 1). With several, the number of
+        chunks aimed at is a multiple of ``n_workers`` (at least ``total / max_nodes``) and
+        the target chunk size is ``total`` divided by it, so every worker gets a share and
+        chunks of equal cost end together.
     forest_ids : array_like of int, optional
         Forest ids; default ``0 .. n-1`` (positions).
     contiguous : bool
@@ -124,7 +125,8 @@ def plan_chunks(nodes_per_forest, max_nodes: int, n_workers: int = 1, *,
     if np.any(cost < 0):
         raise BhgrowInputError("`nodes_per_forest` of plan_chunks must be >= 0")
     total = int(cost.sum())
-    target = max(1, min(int(max_nodes), math.ceil(total / int(n_workers))))
+    n_chunks = _chunk_count(total, int(max_nodes), int(n_workers))
+    target = _chunk_target(total, int(max_nodes), int(n_workers))
     # largest first; equal costs in id order (deterministic)
     order = np.lexsort((ids, -cost))
     alone = order[cost[order] >= target]
@@ -133,12 +135,12 @@ def plan_chunks(nodes_per_forest, max_nodes: int, n_workers: int = 1, *,
     loads = [int(cost[i]) for i in alone]
     if rest.size and contiguous:
         for run in _contiguous_runs(cost, np.sort(rest), int(max_nodes),
-                                    int(n_workers) - len(alone)):
+                                    n_chunks - len(alone)):
             chunks.append(run.tolist())
             loads.append(int(cost[run].sum()))
     elif rest.size:
         rest_total = int(cost[rest].sum())
-        k = max(math.ceil(rest_total / int(max_nodes)), int(n_workers) - len(alone), 1)
+        k = max(math.ceil(rest_total / int(max_nodes)), n_chunks - len(alone), 1)
         k = min(k, int(rest.size))
         bins: list = [[] for _ in range(k)]
         heap = [(0, b) for b in range(k)]          # (load, bin): least loaded, then lowest bin
@@ -161,6 +163,24 @@ def plan_chunks(nodes_per_forest, max_nodes: int, n_workers: int = 1, *,
     out = [np.sort(ids[np.asarray(m, dtype=np.int64)]) for m in chunks]
     rank = sorted(range(len(out)), key=lambda j: (-loads[j], int(out[j][0])))
     return [out[j] for j in rank]
+
+
+def _chunk_count(total: int, max_nodes: int, n_workers: int) -> int:
+    """Chunks to aim for: enough for ``max_nodes`` each, at least one per worker, and with
+    several workers a multiple of their number, so that chunks of equal cost end together
+    (five equal chunks on two workers leave one worker idle for the fifth)."""
+    if n_workers == 1:
+        return 1
+    n = max(math.ceil(total / max_nodes), n_workers)
+    return math.ceil(n / n_workers) * n_workers
+
+
+def _chunk_target(total: int, max_nodes: int, n_workers: int) -> int:
+    """Node count at and above which a forest runs as a chunk of its own."""
+    if n_workers == 1:
+        return max(1, min(max_nodes, total))
+    return max(1, min(max_nodes, math.ceil(total / _chunk_count(total, max_nodes,
+                                                                   n_workers))))
 
 
 def _contiguous_runs(cost, members, max_nodes: int, min_runs: int) -> list:

@@ -66,6 +66,17 @@ def test_plan_one_chunk_per_worker_when_everything_fits():
     assert loads[-1] - loads[0] <= cost.max()
 
 
+def test_plan_chunk_count_is_a_multiple_of_the_workers():
+    # ten equal forests, at most 40 nodes a chunk: 3 chunks would leave one of two workers
+    # idle for the third; the plan makes 4 of equal load instead (one worker: 3)
+    cost = np.full(10, 10)
+    assert len(plan_chunks(cost, 40, 1)) == 3
+    plan = plan_chunks(cost, 40, 2)
+    loads = [int(cost[c].sum()) for c in plan]
+    assert len(plan) == 4 and max(loads) - min(loads) <= 10 and max(loads) <= 40
+    assert len(plan_chunks(cost, 40, 3)) == 3                  # already a multiple
+
+
 @settings(max_examples=60, deadline=None)
 @given(st.lists(st.integers(0, 500), min_size=1, max_size=80), st.integers(1, 900),
        st.integers(1, 6))

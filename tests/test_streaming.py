@@ -190,7 +190,11 @@ def test_contiguous_plan():
         assert np.array_equal(np.sort(np.concatenate(plan)), ids)
         loads = [int(cost[(c - 1) // 3].sum()) for c in plan]
         assert loads == sorted(loads, reverse=True)
-        target = max(1, min(max_nodes, -(-int(cost.sum()) // n_workers)))
+        total = int(cost.sum())
+        # the plan's target chunk size: a multiple of n_workers chunks (bhgrow.parallel)
+        n_chunks = 1 if n_workers == 1 else \
+            -(-max(-(-total // max_nodes), n_workers) // n_workers) * n_workers
+        target = max(1, min(max_nodes, total if n_workers == 1 else -(-total // n_chunks)))
         small = ids[cost < target]
         for c, load in zip(plan, loads):
             assert load <= max_nodes or c.size == 1
