@@ -290,10 +290,9 @@ def _newton(fdf, lo, hi, args, s0):
     compacted here as elements finish); a point with ``0 <= f <= band`` is accepted.
     Safeguarded Newton (rtsafe, Press et al. 2007, sect. 9.4) from the first point ``s0``
     (inside the bracket); each step is aimed at the middle of the acceptance band, so a
-    converging
-    iterate lands inside it rather than just outside on either side; a step that leaves the
-    bracket (or a slope that is not negative, near a maximum of ``f``) is replaced by
-    bisection of the bracket. Accepted points stay put and leave the iteration, so each
+    converging iterate lands inside it rather than just outside on either side; a step
+    that leaves the bracket (or a slope that is not negative, near a maximum of ``f``) is
+    replaced by bisection of the bracket. Accepted points stay put and leave the iteration, so each
     root depends on its own halo only (results must not depend on which halos share a
     chunk). At most :data:`_ROOT_ITERS` iterations. Returns the accepted points, else the
     last point known to have ``f >= 0``.
@@ -342,7 +341,7 @@ def _eddington_end(g0, m0, c: Coefficients, t):
     base = g_eq + drain * b / (a * a)
     ref = np.log((g0 - base) / (mid * np.exp(-b * nxt) - slope * nxt - base)) / a
     nxt = np.where(np.isfinite(ref) & (ref > 0.0), ref, nxt)
-    newton = -(g0 - mid) / (c.inflow - c.loss * g0 - pe * m0 + b * star)
+    newton = -(g0 - mid) / (c.inflow - a * g0 - drain + b * star)
     nxt = np.where(np.isfinite(nxt) & (nxt > 0.0), nxt, newton)
     s0 = np.where((nxt > lo) & (nxt < t), nxt, 0.5 * t)
     return _newton(_eddington_end_fdf, lo, t.copy(),
