@@ -419,7 +419,7 @@ def _grow(model, run, bh, cbh, rows, sl, gas, stars, metals, outflow, inflow, t_
     n_sub = cp.substeps(g0, m_start, coef, h_total, run.substep_dlnm, run.max_substeps)
 
     if linear:
-        r = cp.advance(g0, metals[hrow], m_start, coef, h_total, n_sub)
+        r = cp.advance(g0, metals[hrow], m_start, coef, h_total, n_sub, run.substep_dlnm)
         g, z, m, taken, formed = r.gas, r.metals, r.m_bh, r.accreted, r.stars_formed
         out = r.wind + r.feedback
     else:

@@ -77,6 +77,8 @@ _EDD_TOL = 1e-3
 _EXP_M_TOL, _EXP_P_TOL = np.exp(-_EDD_TOL), np.exp(_EDD_TOL)
 #: rise of the hole's share of the reservoir's loss rate per step, per unit max_dlnm
 _DRAIN_SHARE = 0.1
+#: a Bondi step may grow where its actual growth stayed below this share of the bounds
+_STEP_SAFETY = 0.8
 #: a later Bondi step ending within this factor of the Eddington rate takes the full
 #: predictor-corrector path (its runaway test needs the predictor at the starting mass)
 _RUNAWAY_MARGIN = float(np.exp(-0.05))
@@ -404,7 +406,8 @@ def _bondi_runaway_fdf(s, g0, inv_m0, inflow, lam, kb, e_b):
             _EDD_TOL / (1.0 + _EDD_TOL) * e_b * inv_m)
 
 
-def advance(gas, metals, m_bh, c: Coefficients, dt, n_steps=None) -> IntervalResult:
+def advance(gas, metals, m_bh, c: Coefficients, dt, n_steps=None,
+            max_dlnm=None) -> IntervalResult:
     """Advance reservoir and black hole over ``dt`` (piecewise closed form).
 
     Parameters
@@ -422,6 +425,12 @@ def advance(gas, metals, m_bh, c: Coefficients, dt, n_steps=None) -> IntervalRes
     n_steps : numpy.ndarray, optional
         Per halo: Bondi phases last at most ``dt / n_steps`` (:func:`substeps`; default 1).
         Eddington phases are exact and are never cut.
+    max_dlnm : float, optional
+        The step criterion of :func:`substeps`. If given, a full Bondi step whose actual
+        growth ``ln(M_1/M_0)`` and drain-share rise stayed within 0.8 of their bounds lets
+        the halo's next Bondi step grow by that margin (at most doubled; never below
+        ``dt / n_steps``): the step count from :func:`substeps` rests on upper bounds of
+        the growth, which can be loose.
 
     Returns
     -------
@@ -431,17 +440,17 @@ def advance(gas, metals, m_bh, c: Coefficients, dt, n_steps=None) -> IntervalRes
         by ``k accreted``; ``gas_end = gas + I dt - accreted - stars - wind - feedback``.
     """
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-        return _advance(gas, metals, m_bh, c, dt, n_steps)
+        return _advance(gas, metals, m_bh, c, dt, n_steps, max_dlnm)
 
 
-def _advance(gas, metals, m_bh, c: Coefficients, dt, n_steps) -> IntervalResult:
+def _advance(gas, metals, m_bh, c: Coefficients, dt, n_steps, max_dlnm) -> IntervalResult:
     g = np.array(gas, dtype=np.float64)
     z = np.array(metals, dtype=np.float64)
     m = np.array(m_bh, dtype=np.float64)
     left = np.array(dt, dtype=np.float64)
     n = g.size
     steps = np.ones(n) if n_steps is None else np.asarray(n_steps, dtype=np.float64)
-    h_bondi = left / steps
+    h_bondi = left / steps         # Bondi step of each halo (grows where max_dlnm allows)
     # phases per halo before the rest is taken without further switches: the Bondi steps
     # plus room for the switches (a phase rarely needs more than two per step)
     limit = 2.0 * steps + _MAX_PHASES
@@ -571,8 +580,20 @@ def _advance(gas, metals, m_bh, c: Coefficients, dt, n_steps) -> IntervalResult:
                 gb = gb + cb.per_unit * over
             zb1 = _metals(zb0, gb0, cb.inflow, lam, cb.metal_rate, tb, e_lam)
             pos = tb > 0
-            rate[idx_b] = np.where(pos, np.log1p(cb.keep * accb / mb0) / np.where(pos, tb, 1.0),
-                                   np.nan)
+            dl = np.log1p(cb.keep * accb / mb0)
+            rate[idx_b] = np.where(pos, dl / np.where(pos, tb, 1.0), np.nan)
+            if max_dlnm is not None:
+                # a-posteriori step control on the criteria of substeps(): growth and the
+                # rise of the drain share phi = P B M^2 / (a + P B M^2) over this step
+                full = pos & ~lb & (tb >= hl * (1.0 - 1e-12))
+                if full.any():
+                    pb0 = cb.per_unit * cb.bondi_per_gas * mb0 * mb0
+                    m_end = mb0 + cb.keep * accb
+                    pb1 = cb.per_unit * cb.bondi_per_gas * m_end * m_end
+                    dphi = pb1 / (cb.loss + pb1) - pb0 / (cb.loss + pb0)
+                    r = np.maximum(dl / max_dlnm, dphi / (_DRAIN_SHARE * max_dlnm))
+                    grow = np.clip(_STEP_SAFETY / np.maximum(r, 1e-300), 1.0, 2.0)
+                    h_bondi[idx_b] = np.where(full & np.isfinite(grow), hl * grow, hl)
             if every:
                 g1, z1, m1, a1, gi1, used = gb, zb1, mb0 + cb.keep * accb, accb, gib, tb
             else:
