@@ -584,13 +584,14 @@ def _advance(gas, metals, m_bh, c: Coefficients, dt, n_steps, max_dlnm) -> Inter
             rate[idx_b] = np.where(pos, dl / np.where(pos, tb, 1.0), np.nan)
             if max_dlnm is not None:
                 # a-posteriori step control on the criteria of substeps(): growth and the
-                # rise of the drain share phi = P B M^2 / (a + P B M^2) over this step
+                # rise of the drain share over this step (the usual rule of adaptive
+                # integrators, e.g. Hairer, Norsett & Wanner 1993, sect. II.4; memory)
                 full = pos & ~lb & (tb >= hl * (1.0 - 1e-12))
                 if full.any():
                     pb0 = cb.per_unit * cb.bondi_per_gas * mb0 * mb0
                     m_end = mb0 + cb.keep * accb
                     pb1 = cb.per_unit * cb.bondi_per_gas * m_end * m_end
-                    dphi = pb1 / (cb.loss + pb1) - pb0 / (cb.loss + pb0)
+                    dphi = _drain_share(cb, pb1) - _drain_share(cb, pb0)
                     r = np.maximum(dl / max_dlnm, dphi / (_DRAIN_SHARE * max_dlnm))
                     grow = np.clip(_STEP_SAFETY / np.maximum(r, 1e-300), 1.0, 2.0)
                     h_bondi[idx_b] = np.where(full & np.isfinite(grow), hl * grow, hl)
@@ -624,6 +625,12 @@ def _advance(gas, metals, m_bh, c: Coefficients, dt, n_steps, max_dlnm) -> Inter
                           wind=wind, feedback=(c.per_unit - 1.0) * acc)
 
 
+def _drain_share(c: Coefficients, pb):
+    """The hole's share of the reservoir's loss rate, ``phi = P B M^2 / (a + P B M^2)``
+    (``pb = P B M^2``, 1/Gyr)."""
+    return pb / (c.loss + pb)
+
+
 def substeps(gas, m_bh, c: Coefficients, dt, max_dlnm: float, cap: int) -> np.ndarray:
     """Number of steps of :func:`advance` per halo over ``dt``.
 
@@ -653,7 +660,7 @@ def _substeps(gas, m_bh, c: Coefficients, dt, max_dlnm: float, cap: int) -> np.n
     # accurate: bound the rise of phi per step too, at _DRAIN_SHARE x max_dlnm
     pb = c.per_unit * c.bondi_per_gas * m_bh * m_bh
     grow2 = np.exp(np.minimum(2.0 * dlnm, 700.0))
-    dphi = pb * grow2 / (c.loss + pb * grow2) - pb / (c.loss + pb)
+    dphi = _drain_share(c, pb * grow2) - _drain_share(c, pb)
     dphi = np.where(np.isfinite(dphi), dphi, 1.0)
     n = np.clip(np.ceil(np.maximum(dlnm / max_dlnm, dphi / (_DRAIN_SHARE * max_dlnm))), 1, cap)
     # Eddington-fed over the whole interval: one exact phase (B g M >= e at both ends,
