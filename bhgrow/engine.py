@@ -129,15 +129,18 @@ class History:
     parts: list = field(default_factory=list)
 
     def record(self, bh_id, t, z, mass, mdot, edd_ratio, gas):
-        self.parts.append((bh_id.copy(), np.full(bh_id.size, t), np.full(bh_id.size, z),
-                           mass.copy(), mdot.copy(), edd_ratio.copy(), gas.copy()))
+        # t and z are one value per snapshot: kept as floats until columns() (2/7 less
+        # memory while the run lasts)
+        self.parts.append((bh_id.copy(), float(t), float(z), mass.copy(), mdot.copy(),
+                           edd_ratio.copy(), gas.copy()))
 
     def columns(self) -> dict:
         names = ("bh_id", "t_gyr", "z", "mass_msun", "mdot_msun_yr", "eddington_ratio",
                  "host_gas_msun")
         if not self.parts:
             return {n: np.zeros(0) for n in names}
-        cols = {n: np.concatenate([p[i] for p in self.parts]) for i, n in enumerate(names)}
+        cols = {n: np.concatenate([np.full(p[0].size, p[i]) if np.ndim(p[i]) == 0 else p[i]
+                                   for p in self.parts]) for i, n in enumerate(names)}
         order = np.lexsort((cols["t_gyr"], cols["bh_id"]))
         return {n: v[order] for n, v in cols.items()}
 
@@ -195,10 +198,9 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
     desc = forest.desc_index
     mass_h = forest.mass_msun
     main_prog = forest.main_prog
-    # total progenitor mass of each descendant (roots' desc = -1 land in bin 0, dropped);
-    # the rest of the per-node set-up is done per snapshot slice (no O(n) temporaries)
-    prog_sum = np.bincount(desc + 1, weights=mass_h, minlength=n + 1)[1:]
-    n_prog = np.diff(forest.prog_offsets)
+    prog_offsets, prog_index = forest.prog_offsets, forest.prog_index
+    # the per-node set-up is done per snapshot slice: no O(n) temporaries (fresh memory is
+    # the dearest part of a big run on a virtual machine whose host backs pages on first use)
 
     gas = np.zeros(n)
     stars = np.zeros(n)
@@ -231,16 +233,26 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
             _escape_speeds(model, m, v_c, z, cosmo, v_esc, bh.host[(bh.host >= sl.start)
                                                               & (bh.host < sl.stop)] - sl.start)
         fb_eff = np.asarray(model.reionization.baryon_fraction(m, z, fb), dtype=float)
-        new = n_prog[sl] == 0
+        new = prog_offsets[sl.start + 1:sl.stop + 1] == prog_offsets[sl.start:sl.stop]
         # interval to the descendant, and the descendant's smooth growth (its mass beyond
-        # its progenitors'), credited to its main progenitor
+        # its progenitors', which may sit in earlier snapshots too), credited to its main
+        # progenitor; descendants of this slice lie in rows [lo, lo + span)
         d_sl = desc[sl]
         has_desc = d_sl >= 0
+        go = rows[has_desc]
+        d = d_sl[has_desc]
         d0 = np.where(has_desc, d_sl, rows)
         dts = (t_by_num[forest.snap[d0]] if t_by_num is not None else
                t_snap[np.searchsorted(offsets, d0, side="right") - 1]) - t_snap[k]
-        main = has_desc & (main_prog[d0] == rows)
-        smooth = np.where(main, np.maximum(mass_h[d0] - prog_sum[d0], 0.0), 0.0)
+        smooth = np.zeros(rows.size)
+        if d.size:
+            lo = int(d.min())
+            span = int(d.max()) - lo + 1
+            progs = prog_index[prog_offsets[lo]:prog_offsets[lo + span]]
+            prog_sum = np.bincount(desc[progs] - lo, weights=mass_h[progs], minlength=span)
+            mains = np.flatnonzero(main_prog[d] == go)
+            dm = d[mains]
+            smooth[go[mains] - sl.start] = np.maximum(mass_h[dm] - prog_sum[dm - lo], 0.0)
         gas[sl] = np.where(new, fb_eff * m, gas[sl])
 
         # --- coalescences due by now --------------------------------------------------------
@@ -324,23 +336,16 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
             bh.last_mdot[cbh] = 0.0
 
         # --- pass state down the trees ----------------------------------------------------------
-        go = rows[has_desc]
-        d = desc[go]
         hosted = np.zeros(rows.size, dtype=bool)
         if len(bh):
             hosted[bh.host[in_slice] - sl.start] = True
-        flag = polluted[go] | (stars[go] > 0) | hosted[go - sl.start]
         ud = np.zeros(0, dtype=np.int64)
         if d.size:
-            # sums over progenitors on the descendants' row range (bincount: no np.add.at)
-            lo = int(d.min())
-            span = int(d.max()) - lo + 1
-            dl = d - lo
+            # progenitors add to their descendant in row order (np.add.at: unbuffered)
             for arr in (gas, stars, metals):
-                arr[lo:lo + span] += np.bincount(dl, weights=arr[go], minlength=span)
-            got = np.bincount(dl, weights=flag, minlength=span) > 0
-            polluted[lo:lo + span] |= got
-            ud = lo + np.flatnonzero(np.bincount(dl, minlength=span))
+                np.add.at(arr, d, arr[go])
+            polluted[d[polluted[go] | (stars[go] > 0) | hosted[has_desc]]] = True
+            ud = lo + np.flatnonzero(np.bincount(d - lo, minlength=span))
         moved = _move_black_holes(bh, in_slice, desc, forest, k, n_snap, t_snap, z_snap,
                                   mass_h, model, run, cosmo)
         # baryon cap on the receiving descendants: gas above f_b M_desc is stripped (applied

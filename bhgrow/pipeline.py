@@ -69,7 +69,9 @@ def _merge_histories(results: list) -> dict:
     parts = []
     for r in results:
         hist, r.history = r.history, History()
-        cols = hist.parts[0] if len(hist.parts) == 1 else tuple(hist.columns().values())
+        # one part of whole columns: a compacted chunk (per-snapshot parts hold scalars)
+        single = len(hist.parts) == 1 and np.ndim(hist.parts[0][1]) == 1
+        cols = hist.parts[0] if single else tuple(hist.columns().values())
         parts.append(list(cols))
         del hist, cols
     names = list(History().columns())
