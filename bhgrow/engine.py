@@ -185,7 +185,6 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
     t_start = time.perf_counter()
     keep_freed_memory()
     n = forest.n_nodes
-    fb = cosmo.fb
     t_snap = cosmo.age_gyr(forest.snapshots.z)
     # cosmic time by snapshot number (a look-up is cheaper than a search per node)
     nums = np.asarray(forest.snapshots.snap)
@@ -193,188 +192,211 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
     if nums.size and nums.min() >= 0 and nums.max() < 10 * nums.size + 1000:
         t_by_num = np.zeros(int(nums.max()) + 1)
         t_by_num[nums] = t_snap
-    z_snap = np.asarray(forest.snapshots.z, dtype=float)
-    offsets = forest.snap_offsets
-    desc = forest.desc_index
-    mass_h = forest.mass_msun
-    main_prog = forest.main_prog
-    prog_offsets, prog_index = forest.prog_offsets, forest.prog_index
-    # the per-node set-up is done per snapshot slice: no O(n) temporaries (fresh memory is
-    # the dearest part of a big run on a virtual machine whose host backs pages on first use)
-
-    gas = np.zeros(n)
-    stars = np.zeros(n)
-    metals = np.zeros(n)
-    polluted = np.zeros(n, dtype=bool)
-    # totals of gas removed by the baryon cap at halo mergers and by SN + AGN outflows
-    # (one-element arrays, so _grow can add to them in place)
-    stripped = np.zeros(1)
-    outflow = np.zeros(1)
-
-    bh = BlackHoles()
-    hist = History()
-    events: list = []
-    n_seeds = {name: 0 for name in sd.CHANNEL_CODES}
-    channels = [c for _, c in model.seeding]
-
-    n_snap = len(forest.snapshots)
-    for k in range(n_snap):
-        sl = forest.snapshot_slice(k)
-        if sl.stop == sl.start:
-            continue
-        rows = np.arange(sl.start, sl.stop)
-        z = float(forest.snapshots.z[k])
-        m = mass_h[sl]
-        r_vir, v_c, t_vir = (np.asarray(x, dtype=float)
-                             for x in model.halo.virial(m, z, cosmo))
-        # escape speeds (coalescence kicks, feedback) only where black holes are
-        v_esc = np.zeros(rows.size)
-        if len(bh):
-            _escape_speeds(model, m, v_c, z, cosmo, v_esc, bh.host[(bh.host >= sl.start)
-                                                              & (bh.host < sl.stop)] - sl.start)
-        fb_eff = np.asarray(model.reionization.baryon_fraction(m, z, fb), dtype=float)
-        new = prog_offsets[sl.start + 1:sl.stop + 1] == prog_offsets[sl.start:sl.stop]
-        # interval to the descendant, and the descendant's smooth growth (its mass beyond
-        # its progenitors', which may sit in earlier snapshots too), credited to its main
-        # progenitor; descendants of this slice lie in rows [lo, lo + span)
-        d_sl = desc[sl]
-        has_desc = d_sl >= 0
-        go = rows[has_desc]
-        d = d_sl[has_desc]
-        d0 = np.where(has_desc, d_sl, rows)
-        dts = (t_by_num[forest.snap[d0]] if t_by_num is not None else
-               t_snap[np.searchsorted(offsets, d0, side="right") - 1]) - t_snap[k]
-        smooth = np.zeros(rows.size)
-        if d.size:
-            lo = int(d.min())
-            span = int(d.max()) - lo + 1
-            progs = prog_index[prog_offsets[lo]:prog_offsets[lo + span]]
-            prog_sum = np.bincount(desc[progs] - lo, weights=mass_h[progs], minlength=span)
-            mains = np.flatnonzero(main_prog[d] == go)
-            dm = d[mains]
-            smooth[go[mains] - sl.start] = np.maximum(mass_h[dm] - prog_sum[dm - lo], 0.0)
-        gas[sl] = np.where(new, fb_eff * m, gas[sl])
-
-        # --- coalescences due by now --------------------------------------------------------
-        if len(bh):
-            events += pairs.coalesce(bh, sl, float(t_snap[k]), k, gas, stars, v_esc, mass_h,
-                                     forest, model, run, cosmo, sd.CHANNEL_CODES)
-
-        # --- black holes hosted in this slice ----------------------------------------------
-        in_slice = (bh.host >= sl.start) & (bh.host < sl.stop) if len(bh) else np.zeros(0, bool)
-        central = in_slice & (bh.status == CENTRAL)
-        has_central = np.zeros(rows.size, dtype=bool)
-        has_central[bh.host[central] - sl.start] = True
-
-        # --- seeding ------------------------------------------------------------------------
-        if channels:
-            n_h = model.gas_zone.hydrogen_density(gas[sl], r_vir)
-            metal_z = np.divide(metals[sl], gas[sl], out=np.zeros(rows.size),
-                                where=gas[sl] > 0)
-            j_lw = forest.extra["j_lw"][sl] if "j_lw" in forest.extra else np.full(rows.size,
-                                                                                   np.nan)
-            keys = rng.stream_keys(run.seed, forest.node_id[sl])
-            inp = sd.SeedingInputs(m_halo_msun=m, z=np.full(rows.size, z), t_vir_k=t_vir,
-                                   pristine=~polluted[sl], metallicity=metal_z,
-                                   n_h_cm3=np.asarray(n_h, dtype=float), gas_msun=gas[sl],
-                                   j_lw=j_lw, has_bh=has_central, keys=keys)
-            code, seed_mass = sd.apply_channels(channels, inp)
-            code = np.asarray(code)
-            fire = np.flatnonzero(code > 0)
-            if fire.size:
-                # a halo seeds at most once, so the seeding node's id names the black hole
-                # whatever the chunking
-                bh.append(bh_id=forest.node_id[sl][fire], forest_id=forest.forest_id[sl][fire],
-                          host=rows[fire], mass=np.asarray(seed_mass)[fire],
-                          spin=np.zeros(fire.size), channel=code[fire],
-                          seed_z=np.full(fire.size, z), seed_mass=np.asarray(seed_mass)[fire],
-                          growth=np.zeros(fire.size), status=np.full(fire.size, CENTRAL),
-                          last_mdot=np.zeros(fire.size), end_z=np.full(fire.size, z),
-                          host_mass=m[fire], t_hmerge=np.full(fire.size, np.nan),
-                          t_df_end=np.full(fire.size, np.nan),
-                          t_c=np.full(fire.size, np.nan), radiated=np.zeros(fire.size),
-                          stream_key=keys[fire])
-                for c, cnt in zip(*np.unique(code[fire], return_counts=True)):
-                    n_seeds[CHANNEL_NAMES[int(c)]] += int(cnt)
-                has_central[fire] = True
-                _escape_speeds(model, m, v_c, z, cosmo, v_esc, fire)
-                in_slice = np.r_[in_slice, np.ones(fire.size, bool)]
-                central = np.r_[central, np.ones(fire.size, bool)]
-
-        # --- history at this snapshot (state on arrival, rate over the previous step) -------
-        alive = np.flatnonzero(in_slice)
-        if run.histories and alive.size:
-            eps_a = model.efficiency.efficiency(bh.spin[alive])
-            hist.record(bh.bh_id[alive], float(t_snap[k]), z, bh.mass[alive],
-                        bh.last_mdot[alive] * _GYR_PER_YR,
-                        acc.eddington_ratio(bh.last_mdot[alive], bh.mass[alive], eps_a),
-                        gas[bh.host[alive]])
-        bh.end_z[alive] = z
-        bh.host_mass[alive] = mass_h[bh.host[alive]]
-
-        # --- reservoir + accretion over dt ----------------------------------------------------
-        inflow = fb_eff * smooth / np.where(dts > 0, dts, 1.0)
-        r_zone = model.gas_zone.radius_frac * r_vir
-        t_dyn = np.asarray(dynamical_time_gyr(r_zone, v_c), dtype=float)
-        step_rows = dts > 0
-        quiet = step_rows & ~has_central
-        if quiet.any():
-            q = np.flatnonzero(quiet)
-            g_sl, s_sl, z_sl = gas[sl], stars[sl], metals[sl]      # views
-            # the closed-form step of StarFormation.step, without its argument checks
-            # (all made here) and the metal-flow integrals (not used)
-            res = model.star_formation._evolve(g_sl[q], s_sl[q], z_sl[q], inflow[q],
-                                               t_dyn[q], v_c[q], dts[q], metal_flows=False)
-            g_sl[q], s_sl[q], z_sl[q] = res.gas, res.stars, res.metals
-            outflow += res.outflow_msun.sum()
-        cbh = np.flatnonzero(central)
-        cbh = cbh[step_rows[bh.host[cbh] - sl.start]] if cbh.size else cbh
-        if cbh.size:
-            _grow(model, run, bh, cbh, rows, sl, gas, stars, metals, outflow, inflow,
-                  t_dyn, v_c, v_esc, r_vir, t_vir, dts, k)
-        else:
-            bh.last_mdot[cbh] = 0.0
-
-        # --- pass state down the trees ----------------------------------------------------------
-        hosted = np.zeros(rows.size, dtype=bool)
-        if len(bh):
-            hosted[bh.host[in_slice] - sl.start] = True
-        ud = np.zeros(0, dtype=np.int64)
-        if d.size:
-            # progenitors add to their descendant in row order (np.add.at: unbuffered)
-            for arr in (gas, stars, metals):
-                np.add.at(arr, d, arr[go])
-            polluted[d[polluted[go] | (stars[go] > 0) | hosted[has_desc]]] = True
-            ud = lo + np.flatnonzero(np.bincount(d - lo, minlength=span))
-        moved = _move_black_holes(bh, in_slice, desc, forest, k, n_snap, t_snap, z_snap,
-                                  mass_h, model, run, cosmo)
-        # baryon cap on the receiving descendants: gas above f_b M_desc is stripped (applied
-        # at every arrival, so a descendant fed from several snapshots is capped each time)
-        if ud.size:
-            bh_in = np.bincount(bh.host[moved] - lo, weights=bh.mass[moved],
-                                minlength=span)[ud - lo] if moved.size else 0.0
-            g_ud = gas[ud]
-            excess = g_ud + stars[ud] + bh_in - fb * mass_h[ud]
-            # only where there is something to strip (or no gas left to hold metals)
-            sel = np.flatnonzero((excess > 0.0) | (g_ud <= 0.0))
-            if sel.size:
-                us, gs = ud[sel], g_ud[sel]
-                cut = np.clip(excess[sel], 0.0, gs)
-                metals[us] *= np.divide(gs - cut, gs, out=np.zeros(sel.size),
-                                        where=gs > 0)    # stripped gas takes its metals
-                gas[us] = gs - cut
-                stripped += cut.sum()
+    # per-node state only; the per-node set-up is done per snapshot slice, in a function
+    # whose temporaries are freed before the next slice's are made: fresh memory is the
+    # dearest part of a big run on a virtual machine whose host backs pages on first use
+    w = _Walk(forest=forest, model=model, run=run, cosmo=cosmo, t_snap=t_snap,
+              z_snap=np.asarray(forest.snapshots.z, dtype=float), t_by_num=t_by_num,
+              gas=np.zeros(n), stars=np.zeros(n), metals=np.zeros(n),
+              polluted=np.zeros(n, dtype=bool), bh=BlackHoles(), hist=History(),
+              n_seeds={name: 0 for name in sd.CHANNEL_CODES},
+              channels=[c for _, c in model.seeding])
+    for k in range(len(forest.snapshots)):
+        _snapshot(w, k)
+    bh, gas, stars, events = w.bh, w.gas, w.stars, w.events
 
     # --- end: ledger and baryon check ---------------------------------------------------------
     ledger = _ledger(bh, forest)
-    baryon = _baryon_check(forest, gas, stars, bh, fb)
-    baryon["stripped_msun"] = float(stripped[0])
-    baryon["outflow_msun"] = float(outflow[0])
+    baryon = _baryon_check(forest, gas, stars, bh, cosmo.fb)
+    baryon["stripped_msun"] = float(w.stripped[0])
+    baryon["outflow_msun"] = float(w.outflow[0])
     mergers = {key: np.concatenate([e[key] for e in events]) for key in events[0]} \
         if events else {}
-    return EngineResult(black_holes=bh, history=hist, forest=forest, ledger=ledger,
-                        baryons=baryon, n_seeds=n_seeds, wall_s=time.perf_counter() - t_start,
+    return EngineResult(black_holes=bh, history=w.hist, forest=forest, ledger=ledger,
+                        baryons=baryon, n_seeds=w.n_seeds, wall_s=time.perf_counter() - t_start,
                         mergers=mergers)
+
+
+@dataclass
+class _Walk:
+    """What the snapshot loop carries from one snapshot to the next."""
+
+    forest: Forest
+    model: Model
+    run: RunSettings
+    cosmo: Cosmology
+    t_snap: np.ndarray          # cosmic time of each snapshot, Gyr
+    z_snap: np.ndarray
+    t_by_num: np.ndarray | None  # cosmic time by snapshot number, Gyr (None: search)
+    gas: np.ndarray             # per node, Msun
+    stars: np.ndarray
+    metals: np.ndarray
+    polluted: np.ndarray
+    bh: BlackHoles
+    hist: History
+    n_seeds: dict
+    channels: list
+    events: list = field(default_factory=list)
+    # totals of gas removed by the baryon cap at halo mergers and by SN + AGN outflows
+    # (one-element arrays, so _grow can add to them in place)
+    stripped: np.ndarray = field(default_factory=lambda: np.zeros(1))
+    outflow: np.ndarray = field(default_factory=lambda: np.zeros(1))
+
+
+def _snapshot(w: _Walk, k: int) -> None:
+    """Steps 1-4 of the module notes for the halos of snapshot ``k``."""
+    forest, model, run, cosmo = w.forest, w.model, w.run, w.cosmo
+    gas, stars, metals, polluted, bh = w.gas, w.stars, w.metals, w.polluted, w.bh
+    t_snap, t_by_num, fb = w.t_snap, w.t_by_num, cosmo.fb
+    desc, mass_h = forest.desc_index, forest.mass_msun
+    prog_offsets, prog_index = forest.prog_offsets, forest.prog_index
+    offsets, main_prog = forest.snap_offsets, forest.main_prog
+    outflow, stripped = w.outflow, w.stripped          # added to in place
+    sl = forest.snapshot_slice(k)
+    if sl.stop == sl.start:
+        return
+    rows = np.arange(sl.start, sl.stop)
+    z = float(forest.snapshots.z[k])
+    m = mass_h[sl]
+    r_vir, v_c, t_vir = (np.asarray(x, dtype=float)
+                         for x in model.halo.virial(m, z, cosmo))
+    # escape speeds (coalescence kicks, feedback) only where black holes are
+    v_esc = np.zeros(rows.size)
+    if len(bh):
+        _escape_speeds(model, m, v_c, z, cosmo, v_esc, bh.host[(bh.host >= sl.start)
+                                                          & (bh.host < sl.stop)] - sl.start)
+    fb_eff = np.asarray(model.reionization.baryon_fraction(m, z, fb), dtype=float)
+    new = prog_offsets[sl.start + 1:sl.stop + 1] == prog_offsets[sl.start:sl.stop]
+    # interval to the descendant, and the descendant's smooth growth (its mass beyond
+    # its progenitors', which may sit in earlier snapshots too), credited to its main
+    # progenitor; descendants of this slice lie in rows [lo, lo + span)
+    d_sl = desc[sl]
+    has_desc = d_sl >= 0
+    go = rows[has_desc]
+    d = d_sl[has_desc]
+    d0 = np.where(has_desc, d_sl, rows)
+    dts = (t_by_num[forest.snap[d0]] if t_by_num is not None else
+           t_snap[np.searchsorted(offsets, d0, side="right") - 1]) - t_snap[k]
+    smooth = np.zeros(rows.size)
+    if d.size:
+        lo = int(d.min())
+        span = int(d.max()) - lo + 1
+        progs = prog_index[prog_offsets[lo]:prog_offsets[lo + span]]
+        prog_sum = np.bincount(desc[progs] - lo, weights=mass_h[progs], minlength=span)
+        mains = np.flatnonzero(main_prog[d] == go)
+        dm = d[mains]
+        smooth[go[mains] - sl.start] = np.maximum(mass_h[dm] - prog_sum[dm - lo], 0.0)
+    gas[sl] = np.where(new, fb_eff * m, gas[sl])
+
+    # --- coalescences due by now --------------------------------------------------------
+    if len(bh):
+        w.events += pairs.coalesce(bh, sl, float(t_snap[k]), k, gas, stars, v_esc, mass_h,
+                                   forest, model, run, cosmo, sd.CHANNEL_CODES)
+
+    # --- black holes hosted in this slice ----------------------------------------------
+    in_slice = (bh.host >= sl.start) & (bh.host < sl.stop) if len(bh) else np.zeros(0, bool)
+    central = in_slice & (bh.status == CENTRAL)
+    has_central = np.zeros(rows.size, dtype=bool)
+    has_central[bh.host[central] - sl.start] = True
+
+    # --- seeding ------------------------------------------------------------------------
+    if w.channels:
+        n_h = model.gas_zone.hydrogen_density(gas[sl], r_vir)
+        metal_z = np.divide(metals[sl], gas[sl], out=np.zeros(rows.size),
+                            where=gas[sl] > 0)
+        j_lw = forest.extra["j_lw"][sl] if "j_lw" in forest.extra else np.full(rows.size,
+                                                                               np.nan)
+        keys = rng.stream_keys(run.seed, forest.node_id[sl])
+        inp = sd.SeedingInputs(m_halo_msun=m, z=np.full(rows.size, z), t_vir_k=t_vir,
+                               pristine=~polluted[sl], metallicity=metal_z,
+                               n_h_cm3=np.asarray(n_h, dtype=float), gas_msun=gas[sl],
+                               j_lw=j_lw, has_bh=has_central, keys=keys)
+        code, seed_mass = sd.apply_channels(w.channels, inp)
+        code = np.asarray(code)
+        fire = np.flatnonzero(code > 0)
+        if fire.size:
+            # a halo seeds at most once, so the seeding node's id names the black hole
+            # whatever the chunking
+            bh.append(bh_id=forest.node_id[sl][fire], forest_id=forest.forest_id[sl][fire],
+                      host=rows[fire], mass=np.asarray(seed_mass)[fire],
+                      spin=np.zeros(fire.size), channel=code[fire],
+                      seed_z=np.full(fire.size, z), seed_mass=np.asarray(seed_mass)[fire],
+                      growth=np.zeros(fire.size), status=np.full(fire.size, CENTRAL),
+                      last_mdot=np.zeros(fire.size), end_z=np.full(fire.size, z),
+                      host_mass=m[fire], t_hmerge=np.full(fire.size, np.nan),
+                      t_df_end=np.full(fire.size, np.nan),
+                      t_c=np.full(fire.size, np.nan), radiated=np.zeros(fire.size),
+                      stream_key=keys[fire])
+            for c, cnt in zip(*np.unique(code[fire], return_counts=True)):
+                w.n_seeds[CHANNEL_NAMES[int(c)]] += int(cnt)
+            has_central[fire] = True
+            _escape_speeds(model, m, v_c, z, cosmo, v_esc, fire)
+            in_slice = np.r_[in_slice, np.ones(fire.size, bool)]
+            central = np.r_[central, np.ones(fire.size, bool)]
+
+    # --- history at this snapshot (state on arrival, rate over the previous step) -------
+    alive = np.flatnonzero(in_slice)
+    if run.histories and alive.size:
+        eps_a = model.efficiency.efficiency(bh.spin[alive])
+        w.hist.record(bh.bh_id[alive], float(t_snap[k]), z, bh.mass[alive],
+                    bh.last_mdot[alive] * _GYR_PER_YR,
+                    acc.eddington_ratio(bh.last_mdot[alive], bh.mass[alive], eps_a),
+                    gas[bh.host[alive]])
+    bh.end_z[alive] = z
+    bh.host_mass[alive] = mass_h[bh.host[alive]]
+
+    # --- reservoir + accretion over dt ----------------------------------------------------
+    inflow = fb_eff * smooth / np.where(dts > 0, dts, 1.0)
+    r_zone = model.gas_zone.radius_frac * r_vir
+    t_dyn = np.asarray(dynamical_time_gyr(r_zone, v_c), dtype=float)
+    step_rows = dts > 0
+    quiet = step_rows & ~has_central
+    if quiet.any():
+        q = np.flatnonzero(quiet)
+        g_sl, s_sl, z_sl = gas[sl], stars[sl], metals[sl]      # views
+        # the closed-form step of StarFormation.step, without its argument checks
+        # (all made here) and the metal-flow integrals (not used)
+        res = model.star_formation._evolve(g_sl[q], s_sl[q], z_sl[q], inflow[q],
+                                           t_dyn[q], v_c[q], dts[q], metal_flows=False)
+        g_sl[q], s_sl[q], z_sl[q] = res.gas, res.stars, res.metals
+        outflow += res.outflow_msun.sum()
+    cbh = np.flatnonzero(central)
+    cbh = cbh[step_rows[bh.host[cbh] - sl.start]] if cbh.size else cbh
+    if cbh.size:
+        _grow(model, run, bh, cbh, rows, sl, gas, stars, metals, outflow, inflow,
+              t_dyn, v_c, v_esc, r_vir, t_vir, dts, k)
+    else:
+        bh.last_mdot[cbh] = 0.0
+
+    # --- pass state down the trees ----------------------------------------------------------
+    hosted = np.zeros(rows.size, dtype=bool)
+    if len(bh):
+        hosted[bh.host[in_slice] - sl.start] = True
+    ud = np.zeros(0, dtype=np.int64)
+    if d.size:
+        # progenitors add to their descendant in row order (np.add.at: unbuffered)
+        for arr in (gas, stars, metals):
+            np.add.at(arr, d, arr[go])
+        polluted[d[polluted[go] | (stars[go] > 0) | hosted[has_desc]]] = True
+        ud = lo + np.flatnonzero(np.bincount(d - lo, minlength=span))
+    moved = _move_black_holes(bh, in_slice, desc, forest, k, len(t_snap), t_snap, w.z_snap,
+                              mass_h, model, run, cosmo)
+    # baryon cap on the receiving descendants: gas above f_b M_desc is stripped (applied
+    # at every arrival, so a descendant fed from several snapshots is capped each time)
+    if ud.size:
+        bh_in = np.bincount(bh.host[moved] - lo, weights=bh.mass[moved],
+                            minlength=span)[ud - lo] if moved.size else 0.0
+        g_ud = gas[ud]
+        excess = g_ud + stars[ud] + bh_in - fb * mass_h[ud]
+        # only where there is something to strip (or no gas left to hold metals)
+        sel = np.flatnonzero((excess > 0.0) | (g_ud <= 0.0))
+        if sel.size:
+            us, gs = ud[sel], g_ud[sel]
+            cut = np.clip(excess[sel], 0.0, gs)
+            metals[us] *= np.divide(gs - cut, gs, out=np.zeros(sel.size),
+                                    where=gs > 0)    # stripped gas takes its metals
+            gas[us] = gs - cut
+            stripped += cut.sum()
 
 
 def _escape_speeds(model, m, v_c, z, cosmo, v_esc, loc) -> None:
