@@ -195,19 +195,21 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
     # per-node state only; the per-node set-up is done per snapshot slice, in a function
     # whose temporaries are freed before the next slice's are made: fresh memory is the
     # dearest part of a big run on a virtual machine whose host backs pages on first use
+    # room for a few snapshots' rows (the window of live node state; grows if needed)
+    widest = int(np.diff(forest.snap_offsets).max()) if n else 0
     w = _Walk(forest=forest, model=model, run=run, cosmo=cosmo, t_snap=t_snap,
               z_snap=np.asarray(forest.snapshots.z, dtype=float), t_by_num=t_by_num,
-              gas=np.zeros(n), stars=np.zeros(n), metals=np.zeros(n),
-              polluted=np.zeros(n, dtype=bool), bh=BlackHoles(), hist=History(),
+              state=_NodeState(min(n, 4 * widest + 1024)), bh=BlackHoles(), hist=History(),
               n_seeds={name: 0 for name in sd.CHANNEL_CODES},
               channels=[c for _, c in model.seeding])
     for k in range(len(forest.snapshots)):
         _snapshot(w, k)
-    bh, gas, stars, events = w.bh, w.gas, w.stars, w.events
+    bh, events = w.bh, w.events
 
     # --- end: ledger and baryon check ---------------------------------------------------------
     ledger = _ledger(bh, forest)
-    baryon = _baryon_check(forest, gas, stars, bh, cosmo.fb)
+    excess = w.max_excess if np.isfinite(w.max_excess) else 0.0      # 0: no roots
+    baryon = {"max_relative_excess": excess, "ok": bool(excess <= 1e-6)}
     baryon["stripped_msun"] = float(w.stripped[0])
     baryon["outflow_msun"] = float(w.outflow[0])
     mergers = {key: np.concatenate([e[key] for e in events]) for key in events[0]} \
@@ -215,6 +217,51 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
     return EngineResult(black_holes=bh, history=w.hist, forest=forest, ledger=ledger,
                         baryons=baryon, n_seeds=w.n_seeds, wall_s=time.perf_counter() - t_start,
                         mergers=mergers)
+
+
+class _NodeState:
+    """Gas, stars and metals (Msun) and the "polluted" flag of the live node rows.
+
+    A node's state is written by its progenitors' snapshots and read at its own, so only
+    rows from the current snapshot's first row to the furthest descendant row are live.
+    They sit in arrays indexed by ``row - base``; when the window would pass the arrays'
+    end it is moved to their front (and the arrays doubled if it would fill more than
+    half). Memory is a few snapshots' rows, not the whole chunk's: a big run touches less
+    fresh memory, the dearest kind on a virtual machine whose host backs pages on first
+    use.
+    """
+
+    def __init__(self, capacity: int):
+        capacity = max(int(capacity), 1)
+        self.base = 0            # row of element 0
+        self.top = 0             # rows >= top were never in the window (their state is 0)
+        self.gas, self.stars, self.metals = (np.zeros(capacity) for _ in range(3))
+        self.polluted = np.zeros(capacity, dtype=bool)
+
+    def cover(self, start: int, stop: int) -> None:
+        """Make rows ``[start, stop)`` addressable; rows before ``start`` are dropped.
+
+        ``start`` never decreases from call to call (snapshots are walked in order).
+        """
+        cap = self.gas.size
+        if stop - self.base > cap:
+            live = max(self.top - start, 0)              # rows [start, top) keep their state
+            need = max(stop, self.top) - start
+            old = start - self.base
+            used = self.top - self.base
+            if 2 * need > cap:
+                new_cap = max(2 * need, 2 * cap)
+                for name in ("gas", "stars", "metals", "polluted"):
+                    arr = getattr(self, name)
+                    new = np.zeros(new_cap, dtype=arr.dtype)
+                    new[:live] = arr[old:old + live]
+                    setattr(self, name, new)
+            else:
+                for arr in (self.gas, self.stars, self.metals, self.polluted):
+                    arr[:live] = arr[old:old + live]
+                    arr[live:used] = 0
+            self.base = start
+        self.top = max(self.top, stop)
 
 
 @dataclass
@@ -228,10 +275,7 @@ class _Walk:
     t_snap: np.ndarray          # cosmic time of each snapshot, Gyr
     z_snap: np.ndarray
     t_by_num: np.ndarray | None  # cosmic time by snapshot number, Gyr (None: search)
-    gas: np.ndarray             # per node, Msun
-    stars: np.ndarray
-    metals: np.ndarray
-    polluted: np.ndarray
+    state: _NodeState
     bh: BlackHoles
     hist: History
     n_seeds: dict
@@ -241,12 +285,14 @@ class _Walk:
     # (one-element arrays, so _grow can add to them in place)
     stripped: np.ndarray = field(default_factory=lambda: np.zeros(1))
     outflow: np.ndarray = field(default_factory=lambda: np.zeros(1))
+    #: largest relative excess of gas + stars + black holes over f_b M at the roots so far
+    max_excess: float = -np.inf
 
 
 def _snapshot(w: _Walk, k: int) -> None:
     """Steps 1-4 of the module notes for the halos of snapshot ``k``."""
     forest, model, run, cosmo = w.forest, w.model, w.run, w.cosmo
-    gas, stars, metals, polluted, bh = w.gas, w.stars, w.metals, w.polluted, w.bh
+    bh = w.bh
     t_snap, t_by_num, fb = w.t_snap, w.t_by_num, cosmo.fb
     desc, mass_h = forest.desc_index, forest.mass_msun
     prog_offsets, prog_index = forest.prog_offsets, forest.prog_index
@@ -255,6 +301,15 @@ def _snapshot(w: _Walk, k: int) -> None:
     sl = forest.snapshot_slice(k)
     if sl.stop == sl.start:
         return
+    # node state: rows from this slice's first to its furthest descendant, addressed as
+    # ``row - base``; the slice's own rows as views
+    d_sl = desc[sl]
+    st = w.state
+    st.cover(sl.start, max(sl.stop, int(d_sl.max()) + 1))
+    base = st.base
+    gas, stars, metals, polluted = st.gas, st.stars, st.metals, st.polluted
+    ls = slice(sl.start - base, sl.stop - base)
+    gas_sl, stars_sl, metals_sl = gas[ls], stars[ls], metals[ls]
     rows = np.arange(sl.start, sl.stop)
     z = float(forest.snapshots.z[k])
     m = mass_h[sl]
@@ -270,7 +325,6 @@ def _snapshot(w: _Walk, k: int) -> None:
     # interval to the descendant, and the descendant's smooth growth (its mass beyond
     # its progenitors', which may sit in earlier snapshots too), credited to its main
     # progenitor; descendants of this slice lie in rows [lo, lo + span)
-    d_sl = desc[sl]
     has_desc = d_sl >= 0
     go = rows[has_desc]
     d = d_sl[has_desc]
@@ -286,12 +340,12 @@ def _snapshot(w: _Walk, k: int) -> None:
         mains = np.flatnonzero(main_prog[d] == go)
         dm = d[mains]
         smooth[go[mains] - sl.start] = np.maximum(mass_h[dm] - prog_sum[dm - lo], 0.0)
-    gas[sl] = np.where(new, fb_eff * m, gas[sl])
+    gas_sl[new] = fb_eff[new] * m[new]
 
     # --- coalescences due by now --------------------------------------------------------
     if len(bh):
-        w.events += pairs.coalesce(bh, sl, float(t_snap[k]), k, gas, stars, v_esc, mass_h,
-                                   forest, model, run, cosmo, sd.CHANNEL_CODES)
+        w.events += pairs.coalesce(bh, sl, float(t_snap[k]), k, gas_sl, stars_sl, v_esc,
+                                   mass_h, forest, model, run, cosmo, sd.CHANNEL_CODES)
 
     # --- black holes hosted in this slice ----------------------------------------------
     in_slice = (bh.host >= sl.start) & (bh.host < sl.stop) if len(bh) else np.zeros(0, bool)
@@ -301,15 +355,14 @@ def _snapshot(w: _Walk, k: int) -> None:
 
     # --- seeding ------------------------------------------------------------------------
     if w.channels:
-        n_h = model.gas_zone.hydrogen_density(gas[sl], r_vir)
-        metal_z = np.divide(metals[sl], gas[sl], out=np.zeros(rows.size),
-                            where=gas[sl] > 0)
+        n_h = model.gas_zone.hydrogen_density(gas_sl, r_vir)
+        metal_z = np.divide(metals_sl, gas_sl, out=np.zeros(rows.size), where=gas_sl > 0)
         j_lw = forest.extra["j_lw"][sl] if "j_lw" in forest.extra else np.full(rows.size,
                                                                                np.nan)
         keys = rng.stream_keys(run.seed, forest.node_id[sl])
         inp = sd.SeedingInputs(m_halo_msun=m, z=np.full(rows.size, z), t_vir_k=t_vir,
-                               pristine=~polluted[sl], metallicity=metal_z,
-                               n_h_cm3=np.asarray(n_h, dtype=float), gas_msun=gas[sl],
+                               pristine=~polluted[ls], metallicity=metal_z,
+                               n_h_cm3=np.asarray(n_h, dtype=float), gas_msun=gas_sl,
                                j_lw=j_lw, has_bh=has_central, keys=keys)
         code, seed_mass = sd.apply_channels(w.channels, inp)
         code = np.asarray(code)
@@ -339,9 +392,9 @@ def _snapshot(w: _Walk, k: int) -> None:
     if run.histories and alive.size:
         eps_a = model.efficiency.efficiency(bh.spin[alive])
         w.hist.record(bh.bh_id[alive], float(t_snap[k]), z, bh.mass[alive],
-                    bh.last_mdot[alive] * _GYR_PER_YR,
-                    acc.eddington_ratio(bh.last_mdot[alive], bh.mass[alive], eps_a),
-                    gas[bh.host[alive]])
+                      bh.last_mdot[alive] * _GYR_PER_YR,
+                      acc.eddington_ratio(bh.last_mdot[alive], bh.mass[alive], eps_a),
+                      gas_sl[bh.host[alive] - sl.start])
     bh.end_z[alive] = z
     bh.host_mass[alive] = mass_h[bh.host[alive]]
 
@@ -353,17 +406,16 @@ def _snapshot(w: _Walk, k: int) -> None:
     quiet = step_rows & ~has_central
     if quiet.any():
         q = np.flatnonzero(quiet)
-        g_sl, s_sl, z_sl = gas[sl], stars[sl], metals[sl]      # views
         # the closed-form step of StarFormation.step, without its argument checks
         # (all made here) and the metal-flow integrals (not used)
-        res = model.star_formation._evolve(g_sl[q], s_sl[q], z_sl[q], inflow[q],
+        res = model.star_formation._evolve(gas_sl[q], stars_sl[q], metals_sl[q], inflow[q],
                                            t_dyn[q], v_c[q], dts[q], metal_flows=False)
-        g_sl[q], s_sl[q], z_sl[q] = res.gas, res.stars, res.metals
+        gas_sl[q], stars_sl[q], metals_sl[q] = res.gas, res.stars, res.metals
         outflow += res.outflow_msun.sum()
     cbh = np.flatnonzero(central)
     cbh = cbh[step_rows[bh.host[cbh] - sl.start]] if cbh.size else cbh
     if cbh.size:
-        _grow(model, run, bh, cbh, rows, sl, gas, stars, metals, outflow, inflow,
+        _grow(model, run, bh, cbh, sl, gas_sl, stars_sl, metals_sl, outflow, inflow,
               t_dyn, v_c, v_esc, r_vir, t_vir, dts, k)
     else:
         bh.last_mdot[cbh] = 0.0
@@ -375,23 +427,28 @@ def _snapshot(w: _Walk, k: int) -> None:
     ud = np.zeros(0, dtype=np.int64)
     if d.size:
         # progenitors add to their descendant in row order (np.add.at: unbuffered)
-        for arr in (gas, stars, metals):
-            np.add.at(arr, d, arr[go])
-        polluted[d[polluted[go] | (stars[go] > 0) | hosted[has_desc]]] = True
+        db = d - base
+        for arr, arr_sl in ((gas, gas_sl), (stars, stars_sl), (metals, metals_sl)):
+            np.add.at(arr, db, arr_sl[has_desc])
+        polluted[db[polluted[ls][has_desc] | (stars_sl[has_desc] > 0) | hosted[has_desc]]] = True
         ud = lo + np.flatnonzero(np.bincount(d - lo, minlength=span))
+    roots = np.flatnonzero(~has_desc)
     moved = _move_black_holes(bh, in_slice, desc, forest, k, len(t_snap), t_snap, w.z_snap,
                               mass_h, model, run, cosmo)
+    if roots.size:
+        _baryon_check(w, sl, roots, gas_sl, stars_sl, m, in_slice)
     # baryon cap on the receiving descendants: gas above f_b M_desc is stripped (applied
     # at every arrival, so a descendant fed from several snapshots is capped each time)
     if ud.size:
         bh_in = np.bincount(bh.host[moved] - lo, weights=bh.mass[moved],
                             minlength=span)[ud - lo] if moved.size else 0.0
-        g_ud = gas[ud]
-        excess = g_ud + stars[ud] + bh_in - fb * mass_h[ud]
+        ub = ud - base
+        g_ud = gas[ub]
+        excess = g_ud + stars[ub] + bh_in - fb * mass_h[ud]
         # only where there is something to strip (or no gas left to hold metals)
         sel = np.flatnonzero((excess > 0.0) | (g_ud <= 0.0))
         if sel.size:
-            us, gs = ud[sel], g_ud[sel]
+            us, gs = ub[sel], g_ud[sel]
             cut = np.clip(excess[sel], 0.0, gs)
             metals[us] *= np.divide(gs - cut, gs, out=np.zeros(sel.size),
                                     where=gs > 0)    # stripped gas takes its metals
@@ -408,7 +465,7 @@ def _escape_speeds(model, m, v_c, z, cosmo, v_esc, loc) -> None:
         v_esc[at] = model.halo.escape_speed_kms(m[at], z, cosmo, v_c[at])
 
 
-def _grow(model, run, bh, cbh, rows, sl, gas, stars, metals, outflow, inflow, t_dyn,
+def _grow(model, run, bh, cbh, sl, gas, stars, metals, outflow, inflow, t_dyn,
           v_c, v_esc, r_vir, t_vir, dts, k):
     """Reservoir, accretion and feedback over the interval for halos with a central hole.
 
@@ -416,8 +473,8 @@ def _grow(model, run, bh, cbh, rows, sl, gas, stars, metals, outflow, inflow, t_
     ``n_i`` substeps per halo (:func:`bhgrow.physics.coupled.substeps`, from that halo
     alone, so results never depend on which other halos share its snapshot or chunk).
     """
-    hl = bh.host[cbh] - sl.start               # local host row of each BH (one central each)
-    hrow = rows[hl]                            # global host row
+    # gas, stars, metals: of the slice; hl: each BH's host in it (one central each)
+    hl = bh.host[cbh] - sl.start
     h_total = dts[hl]
 
     # one accretion episode per interval: its disc orientation (chaotic mode) and hence the
@@ -430,7 +487,7 @@ def _grow(model, run, bh, cbh, rows, sl, gas, stars, metals, outflow, inflow, t_
     rv, tv = r_vir[hl], t_vir[hl]
     rho_1, cs, _ = model.gas_zone.state(1.0, rv, tv)          # zone density per Msun of gas
     linear = getattr(model.accretion, "linear_in_density", False)
-    g0 = gas[hrow]
+    g0 = gas[hl]
     I = inflow[hl]
     # the gas a drained reservoir refills to (for a nonlinear law's first coefficient)
     g_ref = np.maximum(g0, np.minimum(I * h_total, np.divide(I, loss, out=I * h_total,
@@ -446,7 +503,7 @@ def _grow(model, run, bh, cbh, rows, sl, gas, stars, metals, outflow, inflow, t_
     n_sub = cp.substeps(g0, m_start, coef, h_total, run.substep_dlnm, run.max_substeps)
 
     if linear:
-        r = cp.advance(g0, metals[hrow], m_start, coef, h_total, n_sub, run.substep_dlnm)
+        r = cp.advance(g0, metals[hl], m_start, coef, h_total, n_sub, run.substep_dlnm)
         g, z, m, taken, formed = r.gas, r.metals, r.m_bh, r.accreted, r.stars_formed
         out = r.wind + r.feedback
     else:
@@ -462,7 +519,7 @@ def _grow(model, run, bh, cbh, rows, sl, gas, stars, metals, outflow, inflow, t_
         dlnb = np.where(np.isfinite(dlnb), dlnb, 0.0)
         n_sub = np.clip(np.maximum(n_sub, np.ceil(dlnb / run.substep_dlnm)), 1,
                         run.max_substeps)
-        g, z, m = g0.copy(), metals[hrow].copy(), m_start.copy()
+        g, z, m = g0.copy(), metals[hl].copy(), m_start.copy()
         taken, formed, out = np.zeros(cbh.size), np.zeros(cbh.size), np.zeros(cbh.size)
         h = h_total / n_sub
         for j in range(int(n_sub.max()) if n_sub.size else 0):
@@ -480,8 +537,8 @@ def _grow(model, run, bh, cbh, rows, sl, gas, stars, metals, outflow, inflow, t_
     bh.growth[cbh] += grown
     bh.mass[cbh] = m_start + grown
     bh.last_mdot[cbh] = np.divide(taken, h_total, out=np.zeros(cbh.size), where=h_total > 0)
-    gas[hrow], metals[hrow] = g, z
-    stars[hrow] += formed
+    gas[hl], metals[hl] = g, z
+    stars[hl] += formed
     outflow += out.sum()
 
 
@@ -556,14 +613,15 @@ def _ledger(bh: BlackHoles, forest: Forest) -> dict:
             "total_ejected_msun": float(ej.sum()), "per_forest_residual": resid}
 
 
-def _baryon_check(forest: Forest, gas, stars, bh: BlackHoles, fb: float) -> dict:
-    """Largest relative excess of gas + stars + black holes over f_b M_halo (final roots)."""
-    bh_mass = np.zeros(forest.n_nodes)
-    on = bh.host >= 0
-    on = on & np.isin(bh.status, (CENTRAL, SINKING, HOST_ENDED))
-    np.add.at(bh_mass, bh.host[on], bh.mass[on])
-    roots = forest.desc_index < 0
-    total = gas[roots] + stars[roots] + bh_mass[roots]
-    cap = fb * forest.mass_msun[roots]
-    excess = float(np.max((total - cap) / cap)) if roots.any() else 0.0
-    return {"max_relative_excess": excess, "ok": bool(excess <= 1e-6)}
+def _baryon_check(w: _Walk, sl: slice, roots, gas_sl, stars_sl, m, in_slice) -> None:
+    """Largest relative excess of gas + stars + black holes over f_b M_halo at the roots
+    of this slice (local rows ``roots``; their state is final), into ``w.max_excess``."""
+    bh = w.bh
+    idx = np.flatnonzero(in_slice)
+    idx = idx[(bh.host[idx] >= sl.start) & (bh.host[idx] < sl.stop)]     # did not move
+    idx = idx[np.isin(bh.status[idx], (CENTRAL, SINKING, HOST_ENDED))]
+    bh_mass = np.bincount(bh.host[idx] - sl.start, weights=bh.mass[idx],
+                          minlength=gas_sl.size)
+    cap = w.cosmo.fb * m[roots]
+    total = gas_sl[roots] + stars_sl[roots] + bh_mass[roots]
+    w.max_excess = max(w.max_excess, float(np.max((total - cap) / cap)))

@@ -98,6 +98,7 @@ def start_clocks(bh, idx, new_host, old_host, t_merge, model, run, cosmo, mass_h
 def coalesce(bh, sl, t_now, k, gas, stars, v_esc, mass_h, forest, model, run, cosmo, codes):
     """Apply every coalescence due by ``t_now`` in the slice ``sl`` (see module rules).
 
+    ``gas``, ``stars`` and ``v_esc`` are the slice's (indexed by ``row - sl.start``).
     Returns a list of event dicts of arrays (one dict per rank of events within a host).
     """
     from .engine import CENTRAL, EJECTED_TRIPLE, SINKING
@@ -201,7 +202,7 @@ def _merge_pairs(bh, ev, c, loc, sl, k, gas, stars, v_esc, mass_h, forest, model
     secondary = np.where(m_c >= m_e, ev, c)
     m1, m2 = bh.mass[primary], bh.mass[secondary]
     rows = sl.start + loc
-    g, s = gas[rows], stars[rows]
+    g, s = gas[loc], stars[loc]                 # of the slice
     gas_frac = np.divide(g, g + s, out=np.zeros(g.size), where=(g + s) > 0)
     u = spin_uniforms(run.seed, bh.bh_id[ev], k)
     chi1, chi2 = model.spin_draw.draw(np.abs(bh.spin[primary]), np.abs(bh.spin[secondary]),

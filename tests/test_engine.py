@@ -219,3 +219,50 @@ def test_black_hole_table_append_grows_in_place_and_pickles_its_rows_only():
     for k in names:
         np.testing.assert_array_equal(getattr(back, k), getattr(table, k))
 
+
+
+def test_node_state_window_keeps_live_rows_and_zeroes_new_ones():
+    # _NodeState against a whole-length reference array: random windows that move on,
+    # widen (descendants several snapshots ahead) and force both the shift and the growth
+    from bhgrow.engine import _NodeState
+
+    rng = np.random.default_rng(5)
+    n = 5000
+    ref = np.zeros(n)
+    state = _NodeState(64)
+    start = 0
+    while start < n:
+        stop = min(n, start + int(rng.integers(1, 400)))
+        state.cover(start, stop)
+        lo, hi = start - state.base, stop - state.base
+        assert lo >= 0 and hi <= state.gas.size
+        np.testing.assert_array_equal(state.gas[lo:hi], ref[start:stop])
+        rows = rng.integers(start, stop, size=50)
+        vals = rng.random(50)
+        np.add.at(ref, rows, vals)
+        np.add.at(state.gas, rows - state.base, vals)
+        start += int(rng.integers(0, 150))
+    assert state.gas.size < n                         # the window, not the whole range
+
+
+def test_window_size_does_not_change_results(forest, monkeypatch):
+    # the engine's node-state window (bhgrow.engine._NodeState) shifted and regrown at
+    # every snapshot gives bit-for-bit the results of one whole-length array
+    from bhgrow import engine
+    from bhgrow.cosmology import Cosmology
+
+    sub = forest.select_forests(forest.forest_ids[::25])
+    cfg = from_table({})
+    cosmo = Cosmology.from_name(cfg.run.cosmology)
+    init = engine._NodeState.__init__
+    runs = []
+    for cap in (1, sub.n_nodes):
+        monkeypatch.setattr(engine._NodeState, "__init__", lambda self, _, c=cap: init(self, c))
+        runs.append(engine.run_forest(sub, cfg.model, cfg.run, cosmo))
+    a, b = runs
+    for col in a.black_holes.__dataclass_fields__:
+        np.testing.assert_array_equal(getattr(a.black_holes, col), getattr(b.black_holes, col),
+                                      err_msg=col)
+    for col, v in a.history.columns().items():
+        np.testing.assert_array_equal(v, b.history.columns()[col], err_msg=col)
+    assert a.baryons == b.baryons
