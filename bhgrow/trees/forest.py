@@ -271,22 +271,29 @@ class Forest:
                      else self.forest_weight[keep_f],
                      box_mpc=self.box_mpc, meta=dict(self.meta))
         # whole forests keep their (snap, forest, node) order and every link stays inside
-        # them, so the index is the parent's, renumbered (no sorting; equals sub._index())
+        # them, so the index is the parent's, renumbered (no sorting; equals sub._index()).
+        # Only arrays of the selection's size: a row's new number is its rank among the
+        # kept rows (a search), not a look-up in an array of the parent's size
         rows = np.flatnonzero(mask)
-        new_row = np.cumsum(mask) - 1
+        del mask
+
+        def renumber(r):
+            return np.searchsorted(rows, r).astype(np.int64)
+
         d = self.desc_index[rows]
-        sub.desc_index = np.where(d >= 0, new_row[np.maximum(d, 0)], -1).astype(np.int64)
-        p = self.prog_index[mask[self.prog_index]]
-        sub.prog_index = new_row[p].astype(np.int64)
-        counts = np.diff(self.prog_offsets)[rows]
+        sub.desc_index = np.where(d >= 0, renumber(d), -1).astype(np.int64)
+        # progenitor lists: the parent's segments of the kept rows, in row order
+        starts, stops = self.prog_offsets[rows], self.prog_offsets[rows + 1]
+        counts = stops - starts
         sub.prog_offsets = np.zeros(rows.size + 1, dtype=np.int64)
         np.cumsum(counts, out=sub.prog_offsets[1:])
+        take = np.arange(int(sub.prog_offsets[-1]), dtype=np.int64) + np.repeat(
+            starts - sub.prog_offsets[:-1], counts)
+        sub.prog_index = renumber(self.prog_index[take])
         mp = self.main_prog[rows]
-        sub.main_prog = np.where(mp >= 0, new_row[np.maximum(mp, 0)], -1).astype(np.int64)
-        per_snap = np.diff(self.snap_offsets)
-        snap_of_row = np.repeat(np.arange(per_snap.size), per_snap)[rows]
-        sub.snap_offsets = np.zeros(per_snap.size + 1, dtype=self.snap_offsets.dtype)
-        np.cumsum(np.bincount(snap_of_row, minlength=per_snap.size), out=sub.snap_offsets[1:])
+        sub.main_prog = np.where(mp >= 0, renumber(mp), -1).astype(np.int64)
+        sub.snap_offsets = np.searchsorted(rows, self.snap_offsets).astype(
+            self.snap_offsets.dtype)
         sub.forest_index = (np.cumsum(keep_f) - 1)[self.forest_index[rows]]
         return sub
 
