@@ -51,7 +51,11 @@ Part 2 -- two ratios on one small forest (``--small-forests`` toy forests on
 (b) **bhgrow / no-physics floor.** The same snapshot walk as the engine, without physics: for
     each snapshot slice, new halos get ``f_b M`` of gas, seeds (bhgrow's) are added, gas,
     stars, metals and a black-hole mass per node pass to descendants with ``np.add.at`` /
-    ``np.bincount``, and black holes move to their hosts' descendants. Ratio =
+    ``np.bincount``, and black holes move to their hosts' descendants. Node state is kept
+    in the engine's window of live rows (:class:`bhgrow.engine._NodeState`), as the engine
+    keeps it (since 2026-12-02; before, both used whole-forest arrays): on a virtual
+    machine that backs fresh pages slowly, whole-forest arrays cost the floor more than the
+    walk itself, and the ratio would reward the engine's memory layout. Ratio =
     time(bhgrow ``run_forest``, default model) / time(floor): the price of the physics.
     Measured on the small and on the big forest; on the big one both from the best runs
     and as the median ratio of ``--pairs-interleaved`` (default 3) engine/floor pairs run
@@ -94,7 +98,7 @@ from _measure import best_of, load_note, measure, n_cpus  # noqa: E402
 from bhgrow._alloc import keep_freed_memory  # noqa: E402
 from bhgrow.config import from_table  # noqa: E402
 from bhgrow.cosmology import Cosmology  # noqa: E402
-from bhgrow.engine import CENTRAL, HOST_ENDED, SINKING, run_forest  # noqa: E402
+from bhgrow.engine import CENTRAL, HOST_ENDED, SINKING, _NodeState, run_forest  # noqa: E402
 from bhgrow.physics.gas import dynamical_time_gyr  # noqa: E402
 from bhgrow.pipeline import run_model  # noqa: E402
 from bhgrow.trees.toy import toy_forest  # noqa: E402
@@ -156,42 +160,48 @@ def seed_rows_of(forest, bh_id: np.ndarray, seed_mass: np.ndarray):
 def floor_walk(forest, seed_rows: np.ndarray, seed_mass: np.ndarray, fb: float) -> dict:
     """The engine's snapshot walk without physics (see the module notes).
 
-    ``seed_rows`` must be sorted. Returns the final totals (to keep the work honest).
+    Node state (gas, stars, metals, black-hole mass) lives in the engine's window of live
+    rows (:class:`bhgrow.engine._NodeState`), as in the engine, so that the ratio compares
+    the physics and not two memory layouts. ``seed_rows`` must be sorted. Returns the
+    final totals (to keep the work honest).
     """
     n = forest.n_nodes
     desc = forest.desc_index
     mass_h = forest.mass_msun
-    n_prog = np.diff(forest.prog_offsets)
-    gas = np.zeros(n)
-    stars = np.zeros(n)
-    metals = np.zeros(n)
-    bh_node = np.zeros(n)
+    po = forest.prog_offsets
+    widest = int(np.diff(forest.snap_offsets).max()) if n else 0
+    st = _NodeState(min(n, 4 * widest + 1024), floats=("gas", "stars", "metals", "bh"),
+                    flags=())
     host = np.zeros(0, dtype=np.int64)
     mbh = np.zeros(0)
     seed_cut = np.searchsorted(seed_rows, forest.snap_offsets)
+    out = {"gas": 0.0, "bh": 0.0}
     for k in range(len(forest.snapshots)):
         a, b = int(forest.snap_offsets[k]), int(forest.snap_offsets[k + 1])
         if a == b:
             continue
-        rows = np.arange(a, b)
-        new = n_prog[a:b] == 0
-        gas[a:b] = np.where(new, fb * mass_h[a:b], gas[a:b])
+        d_sl = desc[a:b]
+        st.cover(a, max(b, int(d_sl.max()) + 1))
+        ls = slice(a - st.base, b - st.base)
+        gas, stars, metals, bh_node = st.gas, st.stars, st.metals, st.bh
+        new = po[a + 1:b + 1] == po[a:b]
+        gas[ls][new] = fb * mass_h[a:b][new]
         s0, s1 = seed_cut[k], seed_cut[k + 1]
         if s1 > s0:
             host = np.concatenate([host, seed_rows[s0:s1]])
             mbh = np.concatenate([mbh, seed_mass[s0:s1]])
         here = np.flatnonzero((host >= a) & (host < b))
-        bh_node[a:b] = np.bincount(host[here] - a, weights=mbh[here], minlength=b - a)
-        go = rows[desc[a:b] >= 0]
-        d = desc[go]
-        np.add.at(gas, d, gas[go])
-        np.add.at(stars, d, stars[go])
-        np.add.at(metals, d, metals[go])
-        np.add.at(bh_node, d, bh_node[go])
+        bh_node[ls] = np.bincount(host[here] - a, weights=mbh[here], minlength=b - a)
+        go = d_sl >= 0
+        d = d_sl[go] - st.base
+        for arr in (gas, stars, metals, bh_node):
+            np.add.at(arr, d, arr[ls][go])
+        roots = ~go
+        out["gas"] += float(gas[ls][roots].sum())
+        out["bh"] += float(bh_node[ls][roots].sum())
         host[here] = desc[host[here]]          # -1 where the host ends: never in a slice again
-    roots = desc < 0
-    return {"gas": float(gas[roots].sum()), "bh": float(bh_node[roots].sum()),
-            "n_bh": int(host.size)}
+    out["n_bh"] = int(host.size)
+    return out
 
 
 # ------------------------------------------------------------------------------------------

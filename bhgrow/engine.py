@@ -220,7 +220,8 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
 
 
 class _NodeState:
-    """Gas, stars and metals (Msun) and the "polluted" flag of the live node rows.
+    """Gas, stars and metals (Msun) and the "polluted" flag of the live node rows (other
+    per-node float and flag arrays by name: ``floats``, ``flags``).
 
     A node's state is written by its progenitors' snapshots and read at its own, so only
     rows from the current snapshot's first row to the furthest descendant row are live.
@@ -231,19 +232,22 @@ class _NodeState:
     use.
     """
 
-    def __init__(self, capacity: int):
+    def __init__(self, capacity: int, floats=("gas", "stars", "metals"), flags=("polluted",)):
         capacity = max(int(capacity), 1)
         self.base = 0            # row of element 0
         self.top = 0             # rows >= top were never in the window (their state is 0)
-        self.gas, self.stars, self.metals = (np.zeros(capacity) for _ in range(3))
-        self.polluted = np.zeros(capacity, dtype=bool)
+        self._names = tuple(floats) + tuple(flags)
+        for name in floats:
+            setattr(self, name, np.zeros(capacity))
+        for name in flags:
+            setattr(self, name, np.zeros(capacity, dtype=bool))
 
     def cover(self, start: int, stop: int) -> None:
         """Make rows ``[start, stop)`` addressable; rows before ``start`` are dropped.
 
         ``start`` never decreases from call to call (snapshots are walked in order).
         """
-        cap = self.gas.size
+        cap = getattr(self, self._names[0]).size
         if stop - self.base > cap:
             live = max(self.top - start, 0)              # rows [start, top) keep their state
             need = max(stop, self.top) - start
@@ -251,13 +255,13 @@ class _NodeState:
             used = self.top - self.base
             if 2 * need > cap:
                 new_cap = max(2 * need, 2 * cap)
-                for name in ("gas", "stars", "metals", "polluted"):
+                for name in self._names:
                     arr = getattr(self, name)
                     new = np.zeros(new_cap, dtype=arr.dtype)
                     new[:live] = arr[old:old + live]
                     setattr(self, name, new)
             else:
-                for arr in (self.gas, self.stars, self.metals, self.polluted):
+                for arr in (getattr(self, name) for name in self._names):
                     arr[:live] = arr[old:old + live]
                     arr[live:used] = 0
             self.base = start
@@ -340,7 +344,7 @@ def _snapshot(w: _Walk, k: int) -> None:
         mains = np.flatnonzero(main_prog[d] == go)
         dm = d[mains]
         smooth[go[mains] - sl.start] = np.maximum(mass_h[dm] - prog_sum[dm - lo], 0.0)
-    gas_sl[new] = fb_eff[new] * m[new]
+    np.copyto(gas_sl, fb_eff * m, where=new)
 
     # --- coalescences due by now --------------------------------------------------------
     if len(bh):
@@ -354,38 +358,13 @@ def _snapshot(w: _Walk, k: int) -> None:
     has_central[bh.host[central] - sl.start] = True
 
     # --- seeding ------------------------------------------------------------------------
-    if w.channels:
-        n_h = model.gas_zone.hydrogen_density(gas_sl, r_vir)
-        metal_z = np.divide(metals_sl, gas_sl, out=np.zeros(rows.size), where=gas_sl > 0)
-        j_lw = forest.extra["j_lw"][sl] if "j_lw" in forest.extra else np.full(rows.size,
-                                                                               np.nan)
-        keys = rng.stream_keys(run.seed, forest.node_id[sl])
-        inp = sd.SeedingInputs(m_halo_msun=m, z=np.full(rows.size, z), t_vir_k=t_vir,
-                               pristine=~polluted[ls], metallicity=metal_z,
-                               n_h_cm3=np.asarray(n_h, dtype=float), gas_msun=gas_sl,
-                               j_lw=j_lw, has_bh=has_central, keys=keys)
-        code, seed_mass = sd.apply_channels(w.channels, inp)
-        code = np.asarray(code)
-        fire = np.flatnonzero(code > 0)
-        if fire.size:
-            # a halo seeds at most once, so the seeding node's id names the black hole
-            # whatever the chunking
-            bh.append(bh_id=forest.node_id[sl][fire], forest_id=forest.forest_id[sl][fire],
-                      host=rows[fire], mass=np.asarray(seed_mass)[fire],
-                      spin=np.zeros(fire.size), channel=code[fire],
-                      seed_z=np.full(fire.size, z), seed_mass=np.asarray(seed_mass)[fire],
-                      growth=np.zeros(fire.size), status=np.full(fire.size, CENTRAL),
-                      last_mdot=np.zeros(fire.size), end_z=np.full(fire.size, z),
-                      host_mass=m[fire], t_hmerge=np.full(fire.size, np.nan),
-                      t_df_end=np.full(fire.size, np.nan),
-                      t_c=np.full(fire.size, np.nan), radiated=np.zeros(fire.size),
-                      stream_key=keys[fire])
-            for c, cnt in zip(*np.unique(code[fire], return_counts=True)):
-                w.n_seeds[CHANNEL_NAMES[int(c)]] += int(cnt)
-            has_central[fire] = True
-            _escape_speeds(model, m, v_c, z, cosmo, v_esc, fire)
-            in_slice = np.r_[in_slice, np.ones(fire.size, bool)]
-            central = np.r_[central, np.ones(fire.size, bool)]
+    fire = _seed(w, sl, z, m, t_vir, r_vir, gas_sl, metals_sl, polluted[ls], has_central) \
+        if w.channels else None
+    if fire is not None and fire.size:
+        has_central[fire] = True
+        _escape_speeds(model, m, v_c, z, cosmo, v_esc, fire)
+        in_slice = np.r_[in_slice, np.ones(fire.size, bool)]
+        central = np.r_[central, np.ones(fire.size, bool)]
 
     # --- history at this snapshot (state on arrival, rate over the previous step) -------
     alive = np.flatnonzero(in_slice)
@@ -405,13 +384,8 @@ def _snapshot(w: _Walk, k: int) -> None:
     step_rows = dts > 0
     quiet = step_rows & ~has_central
     if quiet.any():
-        q = np.flatnonzero(quiet)
-        # the closed-form step of StarFormation.step, without its argument checks
-        # (all made here) and the metal-flow integrals (not used)
-        res = model.star_formation._evolve(gas_sl[q], stars_sl[q], metals_sl[q], inflow[q],
-                                           t_dyn[q], v_c[q], dts[q], metal_flows=False)
-        gas_sl[q], stars_sl[q], metals_sl[q] = res.gas, res.stars, res.metals
-        outflow += res.outflow_msun.sum()
+        outflow += _reservoir_step(model, quiet, gas_sl, stars_sl, metals_sl, inflow, t_dyn,
+                                   v_c, dts)
     cbh = np.flatnonzero(central)
     cbh = cbh[step_rows[bh.host[cbh] - sl.start]] if cbh.size else cbh
     if cbh.size:
@@ -454,6 +428,56 @@ def _snapshot(w: _Walk, k: int) -> None:
                                     where=gs > 0)    # stripped gas takes its metals
             gas[us] = gs - cut
             stripped += cut.sum()
+
+
+def _reservoir_step(model, quiet, gas, stars, metals, inflow, t_dyn, v_c, dts) -> float:
+    """Step 3 for the halos without a central black hole (mask ``quiet`` of the slice): the
+    closed-form step of :meth:`StarFormation.step`, without its argument checks (all made
+    by the engine) and the metal-flow integrals (not used). Updates the slice's ``gas``,
+    ``stars`` and ``metals`` in place; returns the gas blown out (Msun).
+
+    Most halos of a slice are quiet, so the step runs on the whole slice (no gathers) and
+    only the quiet rows are kept.
+    """
+    res = model.star_formation._evolve(gas, stars, metals, inflow, t_dyn, v_c, dts,
+                                       metal_flows=False)
+    np.copyto(gas, res.gas, where=quiet)
+    np.copyto(stars, res.stars, where=quiet)
+    np.copyto(metals, res.metals, where=quiet)
+    return float(res.outflow_msun.sum(where=quiet))
+
+def _seed(w: _Walk, sl: slice, z: float, m, t_vir, r_vir, gas_sl, metals_sl, polluted_sl,
+          has_central) -> np.ndarray:
+    """Step 2 of the module notes: the seeding channels on the halos of slice ``sl``; new
+    black holes are appended to ``w.bh``. Returns the local rows that seeded."""
+    forest, model, run = w.forest, w.model, w.run
+    n = sl.stop - sl.start
+    n_h = model.gas_zone.hydrogen_density(gas_sl, r_vir)
+    metal_z = np.divide(metals_sl, gas_sl, out=np.zeros(n), where=gas_sl > 0)
+    j_lw = forest.extra["j_lw"][sl] if "j_lw" in forest.extra else np.full(n, np.nan)
+    keys = rng.stream_keys(run.seed, forest.node_id[sl])
+    inp = sd.SeedingInputs(m_halo_msun=m, z=np.full(n, z), t_vir_k=t_vir,
+                           pristine=~polluted_sl, metallicity=metal_z,
+                           n_h_cm3=np.asarray(n_h, dtype=float), gas_msun=gas_sl,
+                           j_lw=j_lw, has_bh=has_central, keys=keys)
+    code, seed_mass = sd.apply_channels(w.channels, inp)
+    code = np.asarray(code)
+    fire = np.flatnonzero(code > 0)
+    if fire.size:
+        # a halo seeds at most once, so the seeding node's id names the black hole
+        # whatever the chunking
+        seed_mass = np.asarray(seed_mass)[fire]
+        w.bh.append(bh_id=forest.node_id[sl][fire], forest_id=forest.forest_id[sl][fire],
+                    host=sl.start + fire, mass=seed_mass, spin=np.zeros(fire.size),
+                    channel=code[fire], seed_z=np.full(fire.size, z), seed_mass=seed_mass,
+                    growth=np.zeros(fire.size), status=np.full(fire.size, CENTRAL),
+                    last_mdot=np.zeros(fire.size), end_z=np.full(fire.size, z),
+                    host_mass=m[fire], t_hmerge=np.full(fire.size, np.nan),
+                    t_df_end=np.full(fire.size, np.nan), t_c=np.full(fire.size, np.nan),
+                    radiated=np.zeros(fire.size), stream_key=keys[fire])
+        for c, cnt in zip(*np.unique(code[fire], return_counts=True)):
+            w.n_seeds[CHANNEL_NAMES[int(c)]] += int(cnt)
+    return fire
 
 
 def _escape_speeds(model, m, v_c, z, cosmo, v_esc, loc) -> None:

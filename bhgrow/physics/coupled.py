@@ -207,13 +207,13 @@ def _metals(z0, g0, inflow, rate, p, t, e=None):
 def _eddington_gas_at(g0, m0, inflow, a, b, pe, t):
     """Gas after ``t`` of an Eddington phase (exact), ``e^{bt}``, ``phi1(a t)`` and
     ``e^{-at}`` (``a``: loss rate, ``b = k e``, ``pe = P e``)."""
-    at = a * t
+    at, bt = a * t, b * t
     e_at = np.exp(-at)
     f1a = _small(at, (1.0 - e_at) / at, _series_phi1)
-    ebt = np.exp(b * t)
+    ebt = np.exp(bt)
     # variation of constants for dg/dt = I - a g - P e M_0 e^{bt}: the forcing integrates
-    # to t e^{bt} phi1((a + b) t)
-    g = g0 * e_at + inflow * t * f1a - pe * m0 * t * ebt * _phi1(at + b * t)
+    # to t e^{bt} phi1((a + b) t), whose exponential is e^{-at} / e^{bt}
+    g = g0 * e_at + inflow * t * f1a - pe * m0 * t * ebt * _phi1(at + bt, e_at / ebt)
     return g, ebt, f1a, e_at
 
 
