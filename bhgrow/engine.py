@@ -27,6 +27,10 @@ Per snapshot slice
    "polluted" flag (a progenitor formed stars or held a black hole) propagates with a
    maximum; gas above the descendant's baryon share is removed and recorded.
 
+Node state lives only while it can still be read: in a window of rows from the current
+slice to its furthest descendant (:class:`_NodeState`), so memory follows a few snapshots'
+halos, not the chunk's. The baryon check of the final roots is made slice by slice.
+
 Black holes
 -----------
 A struct-of-arrays table (:class:`BlackHoles`) with a host row per black hole. When a host
