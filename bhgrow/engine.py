@@ -72,6 +72,12 @@ CHANNEL_NAMES = {code: name for name, code in sd.CHANNEL_CODES.items()}
 # purposes of the engine's random draws (seeding uses its own, documented in seeding.py)
 _P_SPIN = 11
 _GYR_PER_YR = 1e-9
+#: rows per block of straight-line per-halo work (its temporaries fit the CPU cache)
+_BLOCK = 32768
+#: most halos per call of the coupled solver: its ~60 temporaries then stay in the CPU's
+#: last-level cache (measured: 10-15% faster than one call on 1-2e5 holes; blocks of 16k
+#: were slower, the solver's fixed cost per phase iteration being paid per block)
+_SOLVER_BLOCK = 65536
 
 
 @dataclass
@@ -441,14 +447,20 @@ def _reservoir_step(model, quiet, gas, stars, metals, inflow, t_dyn, v_c, dts) -
     ``stars`` and ``metals`` in place; returns the gas blown out (Msun).
 
     Most halos of a slice are quiet, so the step runs on the whole slice (no gathers) and
-    only the quiet rows are kept.
+    only the quiet rows are kept; in blocks of :data:`_BLOCK` rows, whose ~20 temporaries
+    stay in the CPU cache (measured: half the time of whole-slice arrays of 5e5 rows).
     """
-    res = model.star_formation._evolve(gas, stars, metals, inflow, t_dyn, v_c, dts,
-                                       metal_flows=False)
-    np.copyto(gas, res.gas, where=quiet)
-    np.copyto(stars, res.stars, where=quiet)
-    np.copyto(metals, res.metals, where=quiet)
-    return float(res.outflow_msun.sum(where=quiet))
+    out = 0.0
+    for a in range(0, quiet.size, _BLOCK):
+        b = slice(a, a + _BLOCK)
+        res = model.star_formation._evolve(gas[b], stars[b], metals[b], inflow[b], t_dyn[b],
+                                           v_c[b], dts[b], metal_flows=False)
+        q = quiet[b]
+        np.copyto(gas[b], res.gas, where=q)
+        np.copyto(stars[b], res.stars, where=q)
+        np.copyto(metals[b], res.metals, where=q)
+        out += float(res.outflow_msun.sum(where=q))
+    return out
 
 def _seed(w: _Walk, sl: slice, z: float, m, t_vir, r_vir, gas_sl, metals_sl, polluted_sl,
           has_central) -> np.ndarray:
@@ -482,6 +494,23 @@ def _seed(w: _Walk, sl: slice, z: float, m, t_vir, r_vir, gas_sl, metals_sl, pol
         for c, cnt in zip(*np.unique(code[fire], return_counts=True)):
             w.n_seeds[CHANNEL_NAMES[int(c)]] += int(cnt)
     return fire
+
+
+def _advance_blocks(gas, metals, m_bh, coef, dt, n_steps, max_dlnm) -> cp.IntervalResult:
+    """:func:`bhgrow.physics.coupled.advance` in near-equal blocks of at most
+    :data:`_SOLVER_BLOCK` halos (each halo's result depends on that halo alone)."""
+    n = gas.size
+    nb = -(-n // _SOLVER_BLOCK)
+    if nb <= 1:
+        return cp.advance(gas, metals, m_bh, coef, dt, n_steps, max_dlnm)
+    out = cp.IntervalResult(*(np.empty(n) for _ in cp.IntervalResult._fields))
+    edges = np.linspace(0, n, nb + 1).astype(int)
+    for a, b in zip(edges[:-1], edges[1:]):
+        s = slice(a, b)
+        r = cp.advance(gas[s], metals[s], m_bh[s], coef.take(s), dt[s], n_steps[s], max_dlnm)
+        for dst, src in zip(out, r):
+            dst[s] = src
+    return out
 
 
 def _escape_speeds(model, m, v_c, z, cosmo, v_esc, loc) -> None:
@@ -531,7 +560,7 @@ def _grow(model, run, bh, cbh, sl, gas, stars, metals, outflow, inflow, t_dyn,
     n_sub = cp.substeps(g0, m_start, coef, h_total, run.substep_dlnm, run.max_substeps)
 
     if linear:
-        r = cp.advance(g0, metals[hl], m_start, coef, h_total, n_sub, run.substep_dlnm)
+        r = _advance_blocks(g0, metals[hl], m_start, coef, h_total, n_sub, run.substep_dlnm)
         g, z, m, taken, formed = r.gas, r.metals, r.m_bh, r.accreted, r.stars_formed
         out = r.wind + r.feedback
     else:

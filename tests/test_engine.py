@@ -245,9 +245,10 @@ def test_node_state_window_keeps_live_rows_and_zeroes_new_ones():
     assert state.gas.size < n                         # the window, not the whole range
 
 
-def test_window_size_does_not_change_results(forest, monkeypatch):
+def test_window_and_block_sizes_do_not_change_results(forest, monkeypatch):
     # the engine's node-state window (bhgrow.engine._NodeState) shifted and regrown at
-    # every snapshot gives bit-for-bit the results of one whole-length array
+    # every snapshot, and the per-halo work and the coupled solver cut into small blocks,
+    # give bit-for-bit the results of one whole-length array and whole-slice calls
     from bhgrow import engine
     from bhgrow.cosmology import Cosmology
 
@@ -256,8 +257,10 @@ def test_window_size_does_not_change_results(forest, monkeypatch):
     cosmo = Cosmology.from_name(cfg.run.cosmology)
     init = engine._NodeState.__init__
     runs = []
-    for cap in (1, sub.n_nodes):
+    for cap, block in ((1, 7), (sub.n_nodes, 10**9)):
         monkeypatch.setattr(engine._NodeState, "__init__", lambda self, _, c=cap: init(self, c))
+        monkeypatch.setattr(engine, "_BLOCK", block)
+        monkeypatch.setattr(engine, "_SOLVER_BLOCK", block)
         runs.append(engine.run_forest(sub, cfg.model, cfg.run, cosmo))
     a, b = runs
     for col in a.black_holes.__dataclass_fields__:
@@ -265,4 +268,7 @@ def test_window_size_does_not_change_results(forest, monkeypatch):
                                       err_msg=col)
     for col, v in a.history.columns().items():
         np.testing.assert_array_equal(v, b.history.columns()[col], err_msg=col)
+    # the blown-out total is summed block by block (order of a float sum)
+    out_a, out_b = a.baryons.pop("outflow_msun"), b.baryons.pop("outflow_msun")
+    assert out_a == pytest.approx(out_b, rel=1e-12)
     assert a.baryons == b.baryons
