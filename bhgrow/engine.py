@@ -496,22 +496,26 @@ def _seed(w: _Walk, sl: slice, z: float, m, t_vir, r_vir, gas_sl, metals_sl, pol
     return fire
 
 
-def _advance_blocks(gas, metals, m_bh, coef, dt, n_steps, max_dlnm) -> cp.IntervalResult:
-    """:func:`bhgrow.physics.coupled.advance` in near-equal blocks of at most
+def _solve_blocks(gas, metals, m_bh, coef, dt, run) -> cp.IntervalResult:
+    """Step counts (:func:`bhgrow.physics.coupled.substeps`) and
+    :func:`bhgrow.physics.coupled.advance` in near-equal blocks of at most
     :data:`_SOLVER_BLOCK` halos (each halo's result depends on that halo alone)."""
+    def solve(s):
+        c = coef.take(s)
+        n_sub = cp.substeps(gas[s], m_bh[s], c, dt[s], run.substep_dlnm, run.max_substeps)
+        return cp.advance(gas[s], metals[s], m_bh[s], c, dt[s], n_sub, run.substep_dlnm)
+
     n = gas.size
     nb = -(-n // _SOLVER_BLOCK)
     if nb <= 1:
-        return cp.advance(gas, metals, m_bh, coef, dt, n_steps, max_dlnm)
+        return solve(slice(None))
     out = cp.IntervalResult(*(np.empty(n) for _ in cp.IntervalResult._fields))
     edges = np.linspace(0, n, nb + 1).astype(int)
     for a, b in zip(edges[:-1], edges[1:]):
         s = slice(a, b)
-        r = cp.advance(gas[s], metals[s], m_bh[s], coef.take(s), dt[s], n_steps[s], max_dlnm)
-        for dst, src in zip(out, r):
+        for dst, src in zip(out, solve(s)):
             dst[s] = src
     return out
-
 
 def _escape_speeds(model, m, v_c, z, cosmo, v_esc, loc) -> None:
     """Fill ``v_esc`` (km/s) at the local rows ``loc`` (repeats allowed)."""
@@ -557,13 +561,13 @@ def _grow(model, run, bh, cbh, sl, gas, stars, metals, outflow, inflow, t_dyn,
     coef = cp.Coefficients(inflow=I, loss=loss, lock=lock, metal_rate=metal_rate,
                            bondi_per_gas=bondi, edd=edd, keep=1.0 - eps, per_unit=per_unit)
     m_start = bh.mass[cbh]
-    n_sub = cp.substeps(g0, m_start, coef, h_total, run.substep_dlnm, run.max_substeps)
 
     if linear:
-        r = _advance_blocks(g0, metals[hl], m_start, coef, h_total, n_sub, run.substep_dlnm)
+        r = _solve_blocks(g0, metals[hl], m_start, coef, h_total, run)
         g, z, m, taken, formed = r.gas, r.metals, r.m_bh, r.accreted, r.stars_formed
         out = r.wind + r.feedback
     else:
+        n_sub = cp.substeps(g0, m_start, coef, h_total, run.substep_dlnm, run.max_substeps)
         # the coefficient depends on the gas: re-evaluated at every step's start, with steps
         # that also bound its change over the interval (estimated from the gas the
         # reservoir moves to without the hole)
