@@ -496,14 +496,15 @@ def _seed(w: _Walk, sl: slice, z: float, m, t_vir, r_vir, gas_sl, metals_sl, pol
     return fire
 
 
-def _solve_blocks(gas, metals, m_bh, coef, dt, run) -> cp.IntervalResult:
+def _solve_blocks(gas, metals, m_bh, coef, dt, run, prior) -> cp.IntervalResult:
     """Step counts (:func:`bhgrow.physics.coupled.substeps`) and
     :func:`bhgrow.physics.coupled.advance` in near-equal blocks of at most
     :data:`_SOLVER_BLOCK` halos (each halo's result depends on that halo alone)."""
     def solve(s):
         c = coef.take(s)
         n_sub = cp.substeps(gas[s], m_bh[s], c, dt[s], run.substep_dlnm, run.max_substeps)
-        return cp.advance(gas[s], metals[s], m_bh[s], c, dt[s], n_sub, run.substep_dlnm)
+        return cp.advance(gas[s], metals[s], m_bh[s], c, dt[s], n_sub, run.substep_dlnm,
+                          prior[s])
 
     n = gas.size
     nb = -(-n // _SOLVER_BLOCK)
@@ -563,7 +564,10 @@ def _grow(model, run, bh, cbh, sl, gas, stars, metals, outflow, inflow, t_dyn,
     m_start = bh.mass[cbh]
 
     if linear:
-        r = _solve_blocks(g0, metals[hl], m_start, coef, h_total, run)
+        # the hole's ln-growth rate over its previous interval predicts its mean mass in
+        # the first Bondi step (as the previous step's does in later steps)
+        prior = coef.keep * bh.last_mdot[cbh] / m_start
+        r = _solve_blocks(g0, metals[hl], m_start, coef, h_total, run, prior)
         g, z, m, taken, formed = r.gas, r.metals, r.m_bh, r.accreted, r.stars_formed
         out = r.wind + r.feedback
     else:

@@ -24,10 +24,12 @@ The system is solved *piecewise in closed form* (:func:`advance`), not by small 
   hole takes ``B Mbar^2 int g dt``. ``Mbar`` is the geometric mean of the masses at the
   start and end of the phase (predictor-corrector): for a reservoir in equilibrium this is
   exact, because ``1/M`` falls linearly in Bondi growth (Bondi 1952) and then
-  ``int M^2 dt = M_0 M_1 t``. The predictor is the hole frozen at its starting mass in
-  the first Bondi step of an interval, and the previous step's growth rate in later ones
-  (one evaluation fewer; steps that may reach the Eddington rate take the first kind). The phase ends where the gas (rising towards its equilibrium)
-  or the hole's mass (growing) makes the Bondi rate reach the Eddington rate, or at the end.
+  ``int M^2 dt = M_0 M_1 t``. The predictor is the hole growing at the rate of its
+  previous step (or, in the first step of an interval, of its previous interval, where the
+  caller gives it), corrected once; without such a rate, or in steps that may reach the
+  Eddington rate, the hole frozen at its starting mass, corrected twice. The phase ends
+  where the gas (rising towards its equilibrium) or the hole's mass (growing) makes the
+  Bondi rate reach the Eddington rate, or at the end.
 
 Only the frozen ``Mbar`` of Bondi phases is an approximation, so the step limit
 (:func:`substeps`) bounds the change of ``ln M`` over a Bondi phase; Eddington-limited
@@ -407,7 +409,7 @@ def _bondi_runaway_fdf(s, g0, inv_m0, inflow, lam, kb, e_b):
 
 
 def advance(gas, metals, m_bh, c: Coefficients, dt, n_steps=None,
-            max_dlnm=None) -> IntervalResult:
+            max_dlnm=None, prior_rate=None) -> IntervalResult:
     """Advance reservoir and black hole over ``dt`` (piecewise closed form).
 
     Parameters
@@ -431,6 +433,12 @@ def advance(gas, metals, m_bh, c: Coefficients, dt, n_steps=None,
         the halo's next Bondi step grow by that margin (at most doubled; never below
         ``dt / n_steps``): the step count from :func:`substeps` rests on upper bounds of
         the growth, which can be loose.
+    prior_rate : numpy.ndarray, optional
+        Per halo: the hole's ln-growth rate ``d ln M / dt`` over its previous interval,
+        1/Gyr; where > 0 it predicts the hole's mean mass in the first Bondi step (one
+        phase evaluation fewer). Measured on the 1e7-node toy forest against
+        ``substep_dlnm = 0.05``: p99.9 of surviving centrals 4.8e-3 -> 2.5e-3, worst
+        1.4% -> 0.9%, total within 2.2e-5 either way.
 
     Returns
     -------
@@ -440,10 +448,11 @@ def advance(gas, metals, m_bh, c: Coefficients, dt, n_steps=None,
         by ``k accreted``; ``gas_end = gas + I dt - accreted - stars - wind - feedback``.
     """
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-        return _advance(gas, metals, m_bh, c, dt, n_steps, max_dlnm)
+        return _advance(gas, metals, m_bh, c, dt, n_steps, max_dlnm, prior_rate)
 
 
-def _advance(gas, metals, m_bh, c: Coefficients, dt, n_steps, max_dlnm) -> IntervalResult:
+def _advance(gas, metals, m_bh, c: Coefficients, dt, n_steps, max_dlnm,
+             prior_rate=None) -> IntervalResult:
     g = np.array(gas, dtype=np.float64)
     z = np.array(metals, dtype=np.float64)
     m = np.array(m_bh, dtype=np.float64)
@@ -460,6 +469,9 @@ def _advance(gas, metals, m_bh, c: Coefficients, dt, n_steps, max_dlnm) -> Inter
     # ln-growth rate of each halo's last Bondi phase, 1/Gyr (NaN: none yet); it predicts
     # the hole's mean mass in the next Bondi step of the same interval
     rate = np.full(n, np.nan)
+    if prior_rate is not None:
+        pr = np.asarray(prior_rate, dtype=np.float64)
+        rate = np.where(pr > 0, pr, rate)
     todo = np.flatnonzero(left > 0)
     while todo.size:
         if todo.size == n:            # usually the first phase: no gathers
