@@ -480,29 +480,37 @@ def _seed(w: _Walk, sl: slice, z: float, m, t_vir, r_vir, gas_sl, metals_sl, pol
     black holes are appended to ``w.bh``. Returns the local rows that seeded."""
     forest, model, run = w.forest, w.model, w.run
     n = sl.stop - sl.start
-    n_h = model.gas_zone.hydrogen_density(gas_sl, r_vir)
-    metal_z = np.divide(metals_sl, gas_sl, out=np.zeros(n), where=gas_sl > 0)
-    j_lw = forest.extra["j_lw"][sl] if "j_lw" in forest.extra else np.full(n, np.nan)
-    keys = rng.stream_keys(run.seed, forest.node_id[sl])
-    inp = sd.SeedingInputs(m_halo_msun=m, z=np.full(n, z), t_vir_k=t_vir,
-                           pristine=~polluted_sl, metallicity=metal_z,
-                           n_h_cm3=np.asarray(n_h, dtype=float), gas_msun=gas_sl,
-                           j_lw=j_lw, has_bh=has_central, keys=keys)
-    code, seed_mass = sd.apply_channels(w.channels, inp)
-    code = np.asarray(code)
+    node_id = forest.node_id[sl]
+    j_lw = forest.extra["j_lw"][sl] if "j_lw" in forest.extra else None
+    code = np.zeros(n, dtype=np.int8)
+    seed_mass = np.zeros(n)
+    # in blocks of _BLOCK halos (the inputs and the channels' masks stay in the CPU cache);
+    # every halo's result depends on its own inputs and stream key alone
+    for a in range(0, n, _BLOCK):
+        b = slice(a, min(a + _BLOCK, n))
+        nb = b.stop - a
+        g = gas_sl[b]
+        inp = sd.SeedingInputs(
+            m_halo_msun=m[b], z=np.full(nb, z), t_vir_k=t_vir[b], pristine=~polluted_sl[b],
+            metallicity=np.divide(metals_sl[b], g, out=np.zeros(nb), where=g > 0),
+            n_h_cm3=np.asarray(model.gas_zone.hydrogen_density(g, r_vir[b]), dtype=float),
+            gas_msun=g, j_lw=np.full(nb, np.nan) if j_lw is None else j_lw[b],
+            has_bh=has_central[b], keys=rng.stream_keys(run.seed, node_id[b]))
+        code[b], seed_mass[b] = sd.apply_channels(w.channels, inp)
     fire = np.flatnonzero(code > 0)
     if fire.size:
         # a halo seeds at most once, so the seeding node's id names the black hole
         # whatever the chunking
-        seed_mass = np.asarray(seed_mass)[fire]
-        w.bh.append(bh_id=forest.node_id[sl][fire], forest_id=forest.forest_id[sl][fire],
+        seed_mass = seed_mass[fire]
+        w.bh.append(bh_id=node_id[fire], forest_id=forest.forest_id[sl][fire],
                     host=sl.start + fire, mass=seed_mass, spin=np.zeros(fire.size),
                     channel=code[fire], seed_z=np.full(fire.size, z), seed_mass=seed_mass,
                     growth=np.zeros(fire.size), status=np.full(fire.size, CENTRAL),
                     last_mdot=np.zeros(fire.size), end_z=np.full(fire.size, z),
                     host_mass=m[fire], t_hmerge=np.full(fire.size, np.nan),
                     t_df_end=np.full(fire.size, np.nan), t_c=np.full(fire.size, np.nan),
-                    radiated=np.zeros(fire.size), stream_key=keys[fire])
+                    radiated=np.zeros(fire.size),
+                    stream_key=rng.stream_keys(run.seed, node_id[fire]))
         for c, cnt in zip(*np.unique(code[fire], return_counts=True)):
             w.n_seeds[CHANNEL_NAMES[int(c)]] += int(cnt)
     return fire
