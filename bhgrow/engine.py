@@ -74,9 +74,10 @@ _P_SPIN = 11
 _GYR_PER_YR = 1e-9
 #: rows per block of straight-line per-halo work (its temporaries fit the CPU cache)
 _BLOCK = 32768
-#: most halos per call of the coupled solver: its ~60 temporaries then stay in the CPU's
-#: last-level cache (measured: 10-15% faster than one call on 1-2e5 holes; blocks of 16k
-#: were slower, the solver's fixed cost per phase iteration being paid per block)
+#: most holes per call of _grow (set-up and coupled solver): the solver's ~60 temporaries
+#: then stay in the CPU's last-level cache (measured: 10-15% faster than one call on
+#: 1-2e5 holes; blocks of 16k were slower, the solver's fixed cost per phase iteration
+#: being paid per block)
 _SOLVER_BLOCK = 65536
 
 
@@ -394,11 +395,11 @@ def _snapshot(w: _Walk, k: int) -> None:
                                    v_c, dts)
     cbh = np.flatnonzero(central)
     cbh = cbh[step_rows[bh.host[cbh] - sl.start]] if cbh.size else cbh
-    if cbh.size:
-        _grow(model, run, bh, cbh, sl, gas_sl, stars_sl, metals_sl, outflow, inflow,
+    # in near-equal blocks of at most _SOLVER_BLOCK holes: the solver's ~60 temporaries
+    # then stay in the CPU's last-level cache; each hole's result depends on its own halo
+    for blk in _blocks(cbh.size, _SOLVER_BLOCK):
+        _grow(model, run, bh, cbh[blk], sl, gas_sl, stars_sl, metals_sl, outflow, inflow,
               t_dyn, v_c, v_esc, r_vir, t_vir, dts, k)
-    else:
-        bh.last_mdot[cbh] = 0.0
 
     # --- pass state down the trees ----------------------------------------------------------
     hosted = np.zeros(rows.size, dtype=bool)
@@ -516,27 +517,11 @@ def _seed(w: _Walk, sl: slice, z: float, m, t_vir, r_vir, gas_sl, metals_sl, pol
     return fire
 
 
-def _solve_blocks(gas, metals, m_bh, coef, dt, run, prior) -> cp.IntervalResult:
-    """Step counts (:func:`bhgrow.physics.coupled.substeps`) and
-    :func:`bhgrow.physics.coupled.advance` in near-equal blocks of at most
-    :data:`_SOLVER_BLOCK` halos (each halo's result depends on that halo alone)."""
-    def solve(s):
-        c = coef.take(s)
-        n_sub = cp.substeps(gas[s], m_bh[s], c, dt[s], run.substep_dlnm, run.max_substeps)
-        return cp.advance(gas[s], metals[s], m_bh[s], c, dt[s], n_sub, run.substep_dlnm,
-                          prior[s])
-
-    n = gas.size
-    nb = -(-n // _SOLVER_BLOCK)
-    if nb <= 1:
-        return solve(slice(None))
-    out = cp.IntervalResult(*(np.empty(n) for _ in cp.IntervalResult._fields))
-    edges = np.linspace(0, n, nb + 1).astype(int)
-    for a, b in zip(edges[:-1], edges[1:]):
-        s = slice(a, b)
-        for dst, src in zip(out, solve(s)):
-            dst[s] = src
-    return out
+def _blocks(n: int, size: int) -> list:
+    """Slices of ``range(n)`` in near-equal blocks of at most ``size``."""
+    nb = max(1, -(-n // size))
+    edges = np.linspace(0, n, nb + 1).astype(int) if n else [0, 0]
+    return [slice(a, b) for a, b in zip(edges[:-1], edges[1:]) if b > a]
 
 def _escape_speeds(model, m, v_c, z, cosmo, v_esc, loc) -> None:
     """Fill ``v_esc`` (km/s) at the local rows ``loc`` (repeats allowed)."""
@@ -587,7 +572,8 @@ def _grow(model, run, bh, cbh, sl, gas, stars, metals, outflow, inflow, t_dyn,
         # the hole's ln-growth rate over its previous interval predicts its mean mass in
         # the first Bondi step (as the previous step's does in later steps)
         prior = coef.keep * bh.last_mdot[cbh] / m_start
-        r = _solve_blocks(g0, metals[hl], m_start, coef, h_total, run, prior)
+        n_sub = cp.substeps(g0, m_start, coef, h_total, run.substep_dlnm, run.max_substeps)
+        r = cp.advance(g0, metals[hl], m_start, coef, h_total, n_sub, run.substep_dlnm, prior)
         g, z, m, taken, formed = r.gas, r.metals, r.m_bh, r.accreted, r.stars_formed
         out = r.wind + r.feedback
     else:
