@@ -591,22 +591,30 @@ def _advance(gas, metals, m_bh, c: Coefficients, dt, n_steps, max_dlnm,
                 accb = accb - over
                 gb = gb + cb.per_unit * over
             zb1 = _metals(zb0, gb0, cb.inflow, lam, cb.metal_rate, tb, e_lam)
-            pos = tb > 0
-            dl = np.log1p(cb.keep * accb / mb0)
-            rate[idx_b] = np.where(pos, dl / np.where(pos, tb, 1.0), np.nan)
-            if max_dlnm is not None:
-                # a-posteriori step control on the criteria of substeps(): growth and the
-                # rise of the drain share over this step (the usual rule of adaptive
-                # integrators, e.g. Hairer, Norsett & Wanner 1993, sect. II.4; memory)
-                full = pos & ~lb & (tb >= hl * (1.0 - 1e-12))
-                if full.any():
-                    pb0 = cb.per_unit * cb.bondi_per_gas * mb0 * mb0
-                    m_end = mb0 + cb.keep * accb
-                    pb1 = cb.per_unit * cb.bondi_per_gas * m_end * m_end
-                    dphi = _drain_share(cb, pb1) - _drain_share(cb, pb0)
-                    r = np.maximum(dl / max_dlnm, dphi / (_DRAIN_SHARE * max_dlnm))
-                    grow = np.clip(_STEP_SAFETY / np.maximum(r, 1e-300), 1.0, 2.0)
-                    h_bondi[idx_b] = np.where(full & np.isfinite(grow), hl * grow, hl)
+            # growth rate (the next step's predictor) and step control only where another
+            # phase of the interval follows (most halos finish in this one)
+            cont = np.flatnonzero((tl - tb > 1e-12 * tl) & ~lb)
+            if cont.size:
+                tc, mc, hc = tb[cont], mb0[cont], hl[cont]
+                cc = cb.take(cont)
+                ac = accb[cont]
+                dl = np.log1p(cc.keep * ac / mc)
+                pos = tc > 0
+                rate[idx_b[cont]] = np.where(pos, dl / np.where(pos, tc, 1.0), np.nan)
+                if max_dlnm is not None:
+                    # a-posteriori step control on the criteria of substeps(): growth and
+                    # the rise of the drain share over this step (the usual rule of adaptive
+                    # integrators, e.g. Hairer, Norsett & Wanner 1993, sect. II.4; memory)
+                    full = pos & (tc >= hc * (1.0 - 1e-12))
+                    if full.any():
+                        pb0 = cc.per_unit * cc.bondi_per_gas * mc * mc
+                        m_end = mc + cc.keep * ac
+                        pb1 = cc.per_unit * cc.bondi_per_gas * m_end * m_end
+                        dphi = _drain_share(cc, pb1) - _drain_share(cc, pb0)
+                        r = np.maximum(dl / max_dlnm, dphi / (_DRAIN_SHARE * max_dlnm))
+                        grow = np.clip(_STEP_SAFETY / np.maximum(r, 1e-300), 1.0, 2.0)
+                        h_bondi[idx_b[cont]] = np.where(full & np.isfinite(grow), hc * grow,
+                                                        hc)
             if every:
                 g1, z1, m1, a1, gi1, used = gb, zb1, mb0 + cb.keep * accb, accb, gib, tb
             else:
