@@ -280,9 +280,10 @@ def _bondi_switch_time(g0, c: Coefficients, mbar, t, lam):
     if i.size:
         ts = np.log((g_eq[i] - g0[i]) / (g_eq[i] - g_star[i])) / lam[i]
         out[i] = np.clip(ts, 0.0, t[i])
-    # no loss at all: g rises linearly
-    i = np.flatnonzero((lam <= 0) & (c.inflow > 0) & (g0 < g_star))
-    if i.size:
+    # no loss at all: g rises linearly (rare: tested for first)
+    flat = lam <= 0
+    if flat.any():
+        i = np.flatnonzero(flat & (c.inflow > 0) & (g0 < g_star))
         out[i] = np.clip((g_star[i] - g0[i]) / c.inflow[i], 0.0, t[i])
     return out
 
