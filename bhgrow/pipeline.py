@@ -355,8 +355,9 @@ def _write_ecsv_rows(table, path: Path, meta: dict | None = None) -> None:
     """:func:`bhgrow.output.write_ecsv`, formatting at most :data:`ECSV_ROWS` rows at a time.
 
     The first rows are written with the header; the rows of each further slice are
-    formatted by the same writer and appended without their header, so the file is the
-    same, byte for byte, as one written whole (tested).
+    formatted by astropy's C CSV writer (the ECSV body is CSV; two to three times faster
+    than the ECSV writer's Python loop) and appended without their column-name line, so
+    the file is the same, byte for byte, as one written whole (tested).
     """
     import io
 
@@ -369,10 +370,10 @@ def _write_ecsv_rows(table, path: Path, meta: dict | None = None) -> None:
     with open(path, "a", newline="") as fh:
         for start in range(ECSV_ROWS, len(table), ECSV_ROWS):
             buf = io.StringIO(newline="")
-            table[start:start + ECSV_ROWS].write(buf, format="ascii.ecsv", delimiter=",")
-            lines = buf.getvalue().splitlines(keepends=True)
-            n_head = next(i for i, ln in enumerate(lines) if not ln.startswith("#"))
-            fh.writelines(lines[n_head + 1:])           # + 1: the column-name line
+            table[start:start + ECSV_ROWS].write(buf, format="ascii.csv", delimiter=",",
+                                                 fast_writer=True)
+            text = buf.getvalue()
+            fh.write(text[text.index("\n") + 1:])        # without the column-name line
 
 
 def write_run(result: RunResult, config: Config, out, *, overwrite: bool = False,
