@@ -395,25 +395,33 @@ def test_random_cases_against_solve_ivp(random_runs):
     assert all(1 <= r[0.1][0] < _CAP for r in random_runs)
 
 
+def _one_call_errors(runs, prior_factor=None):
+    """|M / M_ref - 1| of one advance() call per case with the engine's step control
+    (``max_dlnm`` 0.1; ``prior_factor``: a prior rate that many times the true mean one);
+    the gas ledger must hold whatever the steps."""
+    m_err = []
+    for r in runs:
+        cs, n = r["case"], r[0.1][0]
+        c = _coef(inflow=cs["inflow"], loss=cs["a"], lock=cs["lock"], metal_rate=cs["p"],
+                  bondi=cs["bondi"], edd=cs["e"], keep=cs["k"], per_unit=cs["P"])
+        prior = None if prior_factor is None else _arr(
+            prior_factor * np.log(r["ref"][2] / cs["m0"]) / cs["dt"])
+        out = advance(_arr(cs["g0"]), _arr(cs["z0"]), _arr(cs["m0"]), c, _arr(cs["dt"]),
+                      _arr(n), max_dlnm=0.1, prior_rate=prior)
+        m_err.append(float(out.m_bh[0]) / r["ref"][2] - 1.0)
+        lost = out.accreted + out.stars_formed + out.wind + out.feedback
+        assert float(out.gas[0]) == pytest.approx(
+            cs["g0"] + cs["inflow"] * cs["dt"] - float(lost[0]), rel=1e-9,
+            abs=1e-9 * (cs["g0"] + cs["inflow"] * cs["dt"]))
+    return np.abs(np.array(m_err))
+
+
 def test_random_cases_with_growing_steps_against_solve_ivp(random_runs):
     # one advance() call with the engine's a-posteriori step control (steps grow where the
     # hole's actual growth and drain-share rise stay inside the substeps() bounds): as
     # accurate against solve_ivp (Virtanen et al. 2020; LSODA, rtol 1e-10) as the fixed
     # steps (test_random_cases_against_solve_ivp)
-    m_err = []
-    for r in random_runs:
-        cs, n = r["case"], r[0.1][0]
-        c = _coef(inflow=cs["inflow"], loss=cs["a"], lock=cs["lock"], metal_rate=cs["p"],
-                  bondi=cs["bondi"], edd=cs["e"], keep=cs["k"], per_unit=cs["P"])
-        out = advance(_arr(cs["g0"]), _arr(cs["z0"]), _arr(cs["m0"]), c, _arr(cs["dt"]),
-                      _arr(n), max_dlnm=0.1)
-        m_err.append(float(out.m_bh[0]) / r["ref"][2] - 1.0)
-        # the ledger holds whatever the steps
-        lost = out.accreted + out.stars_formed + out.wind + out.feedback
-        assert float(out.gas[0]) == pytest.approx(
-            cs["g0"] + cs["inflow"] * cs["dt"] - float(lost[0]), rel=1e-9,
-            abs=1e-9 * (cs["g0"] + cs["inflow"] * cs["dt"]))
-    m_err = np.abs(np.array(m_err))
+    m_err = _one_call_errors(random_runs)
     assert np.max(m_err) < 3e-3
     assert np.median(m_err) < 1e-5
 
@@ -424,20 +432,7 @@ def test_random_cases_with_a_prior_rate_against_solve_ivp(random_runs, factor):
     # hole's rate over its previous interval) and corrected once: as accurate against
     # solve_ivp (Virtanen et al. 2020; LSODA, rtol 1e-10) as the frozen-mass start, for a
     # rate near the true mean one and for rates 10x off either way
-    m_err = []
-    for r in random_runs:
-        cs, n = r["case"], r[0.1][0]
-        c = _coef(inflow=cs["inflow"], loss=cs["a"], lock=cs["lock"], metal_rate=cs["p"],
-                  bondi=cs["bondi"], edd=cs["e"], keep=cs["k"], per_unit=cs["P"])
-        true_rate = np.log(r["ref"][2] / cs["m0"]) / cs["dt"]
-        out = advance(_arr(cs["g0"]), _arr(cs["z0"]), _arr(cs["m0"]), c, _arr(cs["dt"]),
-                      _arr(n), max_dlnm=0.1, prior_rate=_arr(factor * true_rate))
-        m_err.append(float(out.m_bh[0]) / r["ref"][2] - 1.0)
-        lost = out.accreted + out.stars_formed + out.wind + out.feedback
-        assert float(out.gas[0]) == pytest.approx(
-            cs["g0"] + cs["inflow"] * cs["dt"] - float(lost[0]), rel=1e-9,
-            abs=1e-9 * (cs["g0"] + cs["inflow"] * cs["dt"]))
-    m_err = np.abs(np.array(m_err))
+    m_err = _one_call_errors(random_runs, prior_factor=factor)
     assert np.max(m_err) < 3e-3
     assert np.median(m_err) < 1e-5
 
