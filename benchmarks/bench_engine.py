@@ -24,7 +24,10 @@ tree node per core. On a shared machine (CPU/wall well below 1) the nodes per CP
 are the better per-core figure.
 
 Part 2 -- two ratios on one small forest (``--small-forests`` toy forests on
-``--small-snaps`` snapshots, ~1e3 nodes), measured in the same run:
+``--small-snaps`` snapshots; by default 1530 forests on 20 snapshots, 2.0e5 nodes, with
+solve_ivp run on a random 5% of them, ``--ivp-sample``, its time scaled up by the node
+count), measured in the same run. The engine's fixed cost per snapshot dominates below
+~1e5 nodes, so the ratio (a) falls there (~370 at 3.9e4 nodes, ~70 at 1e3):
 
 (a) **per-halo solve_ivp / bhgrow.** The script a researcher would otherwise write: loop over
     forests, walk the forest's snapshots, and for every halo holding a black hole integrate
@@ -73,7 +76,8 @@ Sizes: the default run (1e7 nodes, all cases, ``--traced``) took ~5 min on a sha
     python benchmarks/bench_engine.py [--nodes 1e7] [--snaps 40] [--pairs both]
         [--cases engine,pipeline,floor] [--histories on] [--traced] [--repeat 1]
         [--pairs-interleaved 3]
-        [--small-forests 30] [--small-snaps 10] [--rtol 1e-6] [--method LSODA]
+        [--small-forests 1530] [--small-snaps 20] [--ivp-sample 0.05] [--rtol 1e-6]
+        [--method LSODA]
         [--no-ratios] [--ratios-only] [--profile]
 """
 
@@ -472,13 +476,13 @@ def main() -> int:
                     help="also measure the tracemalloc peak (one extra untimed run per case)")
     ap.add_argument("--no-isolate", action="store_true",
                     help="run the cases in this process instead of forked children")
-    ap.add_argument("--small-forests", type=int, default=30,
+    ap.add_argument("--small-forests", type=int, default=1530,
                     help="toy forests of the small forest of the ratios")
-    ap.add_argument("--small-snaps", type=int, default=10,
+    ap.add_argument("--small-snaps", type=int, default=20,
                     help="snapshots of the small forest")
     ap.add_argument("--small-repeat", type=int, default=5,
                     help="timed runs of bhgrow and the floor on the small forest")
-    ap.add_argument("--ivp-sample", type=float, default=1.0,
+    ap.add_argument("--ivp-sample", type=float, default=0.05,
                     help="fraction of the small forest's forests given to solve_ivp (its "
                          "time is scaled up by the node count; for small forests >~1e4 "
                          "nodes, where the full solve_ivp run takes minutes)")
