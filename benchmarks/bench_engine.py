@@ -169,13 +169,10 @@ def floor_walk(forest, seed_rows: np.ndarray, seed_mass: np.ndarray, fb: float) 
     the physics and not two memory layouts. ``seed_rows`` must be sorted. Returns the
     final totals (to keep the work honest).
     """
-    n = forest.n_nodes
     desc = forest.desc_index
     mass_h = forest.mass_msun
     po = forest.prog_offsets
-    widest = int(np.diff(forest.snap_offsets).max()) if n else 0
-    st = _NodeState(min(n, 4 * widest + 1024), floats=("gas", "stars", "metals", "bh"),
-                    flags=())
+    st = _NodeState.for_forest(forest, floats=("gas", "stars", "metals", "bh"), flags=())
     host = np.zeros(0, dtype=np.int64)
     mbh = np.zeros(0)
     seed_cut = np.searchsorted(seed_rows, forest.snap_offsets)

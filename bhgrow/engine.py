@@ -195,7 +195,6 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
     """
     t_start = time.perf_counter()
     keep_freed_memory()
-    n = forest.n_nodes
     t_snap = cosmo.age_gyr(forest.snapshots.z)
     # cosmic time by snapshot number (a look-up is cheaper than a search per node)
     nums = np.asarray(forest.snapshots.snap)
@@ -206,11 +205,9 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
     # per-node state only; the per-node set-up is done per snapshot slice, in a function
     # whose temporaries are freed before the next slice's are made: fresh memory is the
     # dearest part of a big run on a virtual machine whose host backs pages on first use
-    # room for a few snapshots' rows (the window of live node state; grows if needed)
-    widest = int(np.diff(forest.snap_offsets).max()) if n else 0
     w = _Walk(forest=forest, model=model, run=run, cosmo=cosmo, t_snap=t_snap,
               z_snap=np.asarray(forest.snapshots.z, dtype=float), t_by_num=t_by_num,
-              state=_NodeState(min(n, 4 * widest + 1024)), bh=BlackHoles(), hist=History(),
+              state=_NodeState.for_forest(forest), bh=BlackHoles(), hist=History(),
               n_seeds={name: 0 for name in sd.CHANNEL_CODES},
               channels=[c for _, c in model.seeding])
     for k in range(len(forest.snapshots)):
@@ -252,6 +249,14 @@ class _NodeState:
             setattr(self, name, np.zeros(capacity))
         for name in flags:
             setattr(self, name, np.zeros(capacity, dtype=bool))
+
+    @classmethod
+    def for_forest(cls, forest: Forest, **names) -> "_NodeState":
+        """A window with room for a few of ``forest``'s widest snapshots (it grows if a
+        walk needs more)."""
+        n = forest.n_nodes
+        widest = int(np.diff(forest.snap_offsets).max()) if n else 0
+        return cls(min(n, 4 * widest + 1024), **names)
 
     def cover(self, start: int, stop: int) -> None:
         """Make rows ``[start, stop)`` addressable; rows before ``start`` are dropped.
@@ -443,8 +448,7 @@ def _halo_properties(model, cosmo, m, z: float):
     halos of mass ``m`` (Msun) at redshift ``z``; in blocks of :data:`_BLOCK` halos, whose
     temporaries stay in the CPU cache (measured: ~25% faster than whole-slice arrays)."""
     out = tuple(np.empty(m.size) for _ in range(5))
-    for a in range(0, m.size, _BLOCK):
-        b = slice(a, a + _BLOCK)
+    for b in _blocks(m.size, _BLOCK):
         r_vir, v_c, t_vir = model.halo.virial(m[b], z, cosmo)
         fb_eff = model.reionization.baryon_fraction(m[b], z, cosmo.fb)
         t_dyn = dynamical_time_gyr(model.gas_zone.radius_frac * np.asarray(r_vir), v_c)
@@ -464,8 +468,7 @@ def _reservoir_step(model, quiet, gas, stars, metals, inflow, t_dyn, v_c, dts) -
     stay in the CPU cache (measured: half the time of whole-slice arrays of 5e5 rows).
     """
     out = 0.0
-    for a in range(0, quiet.size, _BLOCK):
-        b = slice(a, a + _BLOCK)
+    for b in _blocks(quiet.size, _BLOCK):
         res = model.star_formation._evolve(gas[b], stars[b], metals[b], inflow[b], t_dyn[b],
                                            v_c[b], dts[b], metal_flows=False)
         q = quiet[b]
@@ -487,9 +490,8 @@ def _seed(w: _Walk, sl: slice, z: float, m, t_vir, r_vir, gas_sl, metals_sl, pol
     seed_mass = np.zeros(n)
     # in blocks of _BLOCK halos (the inputs and the channels' masks stay in the CPU cache);
     # every halo's result depends on its own inputs and stream key alone
-    for a in range(0, n, _BLOCK):
-        b = slice(a, min(a + _BLOCK, n))
-        nb = b.stop - a
+    for b in _blocks(n, _BLOCK):
+        nb = b.stop - b.start
         g = gas_sl[b]
         inp = sd.SeedingInputs(
             m_halo_msun=m[b], z=np.full(nb, z), t_vir_k=t_vir[b], pristine=~polluted_sl[b],
