@@ -30,7 +30,14 @@ For each: wall time (including the worker pool's start-up and the return of the 
 utilisation ``U = sum(busy) / (wall x workers)`` with ``busy`` = ``EngineResult.chunk_s`` of
 each chunk (the whole task in its worker: selecting or reading the forests, the engine,
 packing the result; starting the pool and shipping results back count as idle), and the
-speed-up over run 1. The
+speed-up over run 1. Runs are interleaved: each of ``--repeat`` rounds runs the serial
+plan and then every 2-worker plan, and the speed-up is the median over rounds of the serial
+wall time over the 2-worker wall time of the same round (the vCPUs of the development
+machine change speed by 10-30% over minutes, so the best serial and best parallel runs of
+a session may come from different speeds). Last, the serial and the 2-worker bhgrow plan
+run again, each in a new process (the forest set loaded from a pickle, untimed), as a
+user's ``bhgrow run`` starts: in-process serial rounds reuse memory their earlier rounds
+made, while a forked worker's first chunk must fault its memory in. The
 cluster forest alone is also run (``run_forest`` on it, CPU time), to show its cost share
 against its node share. Target: U >= 85% with 2 workers. Parallel timings need an otherwise idle
 machine: the load average is printed first.
@@ -45,7 +52,10 @@ from __future__ import annotations
 import argparse
 import dataclasses
 import heapq
+import pickle
+import subprocess
 import sys
+import tempfile
 import time
 from pathlib import Path
 
@@ -127,7 +137,29 @@ def run_one_by_one(forest, plan, cfg, cosmo) -> dict:
     return {"wall": np.array(wall), "cpu": np.array(cpu)}
 
 
+def run_fresh(path: Path, workers: int) -> float:
+    """Wall time of run_chunks in a new Python process (as ``bhgrow run`` starts), on the
+    forest set and plan pickled at ``path``; loading them is not timed."""
+    out = subprocess.run([sys.executable, __file__, "--child", str(path), str(workers)],
+                         capture_output=True, text=True, check=True)
+    return float(out.stdout.split()[-1])
+
+
+def child(path: str, workers: int) -> int:
+    with open(path, "rb") as fh:
+        forest, plans, cfg = pickle.load(fh)
+    cosmo = Cosmology.from_name(cfg.run.cosmology)
+    run_forest(toy_forest(3, seed=99, n_snap=len(forest.snapshots), box_mpc=forest.box_mpc),
+               cfg.model, cfg.run, cosmo)                        # warm the lazy tables
+    t0 = time.perf_counter()
+    run_chunks(forest, plans[workers], cfg.model, cfg.run, cosmo, workers=workers)
+    print(time.perf_counter() - t0)
+    return 0
+
+
 def main() -> int:
+    if len(sys.argv) == 4 and sys.argv[1] == "--child":
+        return child(sys.argv[2], int(sys.argv[3]))
     ap = argparse.ArgumentParser(description=__doc__,
                                  formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--cluster-share", type=float, default=0.3,
@@ -193,8 +225,16 @@ def main() -> int:
     c0 = time.process_time()
     r_c = run_forest(forest.select_forests([cid]), cfg.model, run, cosmo)
     cpu_cluster = time.process_time() - c0
-    serial = min((run_parallel(forest, plan1, cfg, cosmo, 1)
-                  for _ in range(max(1, args.repeat))), key=lambda x: x["wall"])
+    # runs interleaved: each repeat runs the serial plan and then every 2-worker plan back
+    # to back, so a speed-up compares runs made at the same machine speed (this machine's
+    # vCPU speed drifts by 10-30% over minutes); the median over repeats is reported
+    reps = max(1, args.repeat)
+    serial_runs, par_runs = [], {name: [] for name, _ in variants}
+    for _ in range(reps):
+        serial_runs.append(run_parallel(forest, plan1, cfg, cosmo, 1))
+        for name, plan in variants:
+            par_runs[name].append(run_parallel(forest, plan, cfg, cosmo, w))
+    serial = min(serial_runs, key=lambda x: x["wall"])
     serial_cpu = run_one_by_one(forest, plan1, cfg, cosmo)["cpu"].sum()
     print(f"cluster forest alone: {cpu_cluster:.2f} CPU s = {cpu_cluster / serial_cpu:.0%} of "
           f"the serial engine's {serial_cpu:.2f} CPU s, for {n_c / n:.0%} of the nodes "
@@ -208,8 +248,10 @@ def main() -> int:
     out = {}
     for name, plan in variants:
         alone = run_one_by_one(forest, plan, cfg, cosmo)
-        r = min((run_parallel(forest, plan, cfg, cosmo, w) for _ in range(max(1, args.repeat))),
-                key=lambda x: x["wall"])
+        runs = par_runs[name]
+        ups = np.array([a["wall"] / b["wall"] for a, b in zip(serial_runs, runs)])
+        r = runs[int(np.argsort(ups)[len(ups) // 2])]        # the run of the median speed-up
+        r["speedup"], r["ups"] = float(np.median(ups)), ups
         r["chunks"] = len(plan)
         # the plan's own balance and best wall time, from each chunk's CPU time alone
         r["ideal"] = greedy_makespan(alone["cpu"], w)
@@ -219,8 +261,10 @@ def main() -> int:
         detail = ", ".join(f"{cn / n:.0%} {b:.2f} s ({c:.2f} CPU s alone)" for cn, b, c in
                            zip(_chunk_nodes(forest, plan), r["busy"], alone["cpu"]))
         print(f"{w} workers, {name}: {len(plan)} chunks (node share, busy: {detail}); wall "
-              f"{r['wall']:.2f} s; utilisation {r['util']:.1%}; speed-up "
-              f"{serial['wall'] / r['wall']:.2f}. Chunks alone: {alone['cpu'].sum():.2f} CPU s"
+              f"{r['wall']:.2f} s; utilisation {r['util']:.1%}; speed-up over the serial run "
+              f"just before: {', '.join(f'{u:.2f}' for u in ups)}, median {r['speedup']:.2f} "
+              f"(best walls: serial {serial['wall']:.2f} s, {w} workers "
+              f"{min(x['wall'] for x in runs):.2f} s). Chunks alone: {alone['cpu'].sum():.2f} CPU s"
               f" = {r['overhead']:.2f} x the serial run; greedy hand-out of those gives "
               f"{r['ideal']:.2f} s, balance {r['balance']:.0%}, ideal speed-up "
               f"{serial_cpu / r['ideal']:.2f}", flush=True)
@@ -229,20 +273,38 @@ def main() -> int:
 
     print(f"\nREADME table (load balance, {n:.2e} nodes; the cluster forest holds {n_c / n:.0%} "
           f"of the nodes and costs {cpu_cluster / serial_cpu:.0%} of the serial engine time):\n")
-    print("| plan | workers | chunks | wall s | utilisation | speed-up | balance of the plan "
-          "| engine CPU vs serial | ideal speed-up |")
+    print("| plan | workers | chunks | wall s | utilisation | speed-up (median) | balance of the "
+          "plan | engine CPU vs serial | ideal speed-up |")
     print("|---|---:|---:|---:|---:|---:|---:|---:|---:|")
     print(f"| serial | 1 | {len(plan1)} | {serial['wall']:.2f} | "
           f"{serial['busy'].sum() / serial['wall']:.0%} | 1.00 | - | 1.00 | 1.00 |")
     for name, r in out.items():
         print(f"| {name} | {w} | {r['chunks']} | {r['wall']:.2f} | {r['util']:.0%} | "
-              f"{serial['wall'] / r['wall']:.2f} | {r['balance']:.0%} | {r['overhead']:.2f} | "
+              f"{r['speedup']:.2f} | {r['balance']:.0%} | {r['overhead']:.2f} | "
               f"{serial_cpu / r['ideal']:.2f} |")
     print("\n(utilisation = sum of chunk busy times / (wall x workers); balance of the plan = "
           "sum / (workers x greedy makespan) of the chunks' CPU times run one at a time (whole "
           "chunk: sub-forest selection, engine, compaction); "
           "engine CPU vs serial = those summed over the serial run's; ideal speed-up = serial "
           "CPU / that makespan)")
+    # the same comparison with every run in a new process, as a user's `bhgrow run` is: the
+    # in-process serial runs above reuse memory their earlier runs made (warm pages), while a
+    # forked worker's first chunk must fault its memory in
+    with tempfile.TemporaryDirectory() as tmp:
+        path = Path(tmp) / "set.pkl"
+        with open(path, "wb") as fh:
+            pickle.dump((forest, {1: plan1, w: plan_w}, cfg), fh, protocol=5)
+        fresh = []
+        for i in range(reps):
+            order = (1, w) if i % 2 == 0 else (w, 1)
+            t = {k: run_fresh(path, k) for k in order}
+            fresh.append((t[1], t[w]))
+    ups = [a / b for a, b in fresh]
+    print(f"\nfresh processes, bhgrow plan: serial / {w} workers per round (alternating "
+          f"which runs first): " + ", ".join(f"{a:.2f}/{b:.2f} s = {u:.2f}" for (a, b), u in
+                                            zip(fresh, ups)) + f"; median speed-up "
+          f"{np.median(ups):.2f}")
+
     u = out["bhgrow plan (plan_chunks)"]["util"]
     print(f"\nutilisation with the bhgrow plan (default chunk_nodes) {u:.1%}: "
           f"{'meets' if u >= 0.85 else 'BELOW'} the 85% target")

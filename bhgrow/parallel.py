@@ -10,10 +10,11 @@ independent chunks:
    Math. 17, 416): a forest at least as large as the target chunk size runs alone, the rest
    are packed so chunks come out of similar size, and chunks are handed out largest first
    so a giant forest never waits behind a queue of small ones.
-2. :func:`run_chunks` runs the chunks in this process, in local worker processes
-   (:class:`concurrent.futures.ProcessPoolExecutor`; each worker holds the forest once and
-   receives only forest ids), or on a ``dask.distributed`` cluster (each task receives its
-   sub-forest); results come back in plan order, whatever order they finish in. The trees
+2. :func:`run_chunks` runs the chunks in this process, on ``N`` local workers (this
+   process and ``N - 1`` forked ones, a :class:`concurrent.futures.ProcessPoolExecutor`;
+   each forked worker holds the forest once and receives only forest ids), or on a
+   ``dask.distributed`` cluster (each task receives its sub-forest); results come back in
+   plan order, whatever order they finish in. The trees
    are an in-memory :class:`~bhgrow.trees.forest.Forest` or a lazily read HDF5 file
    (:class:`~bhgrow.trees.io.HDF5Forests`): then each worker process opens the file itself
    and reads only the forests of its chunk, and for Dask the parent reads one chunk per
@@ -52,6 +53,7 @@ from pathlib import Path
 import numpy as np
 
 from . import __version__, engine
+from ._alloc import release_free_memory
 from .errors import BhgrowInputError
 from .trees.forest import Forest
 
@@ -464,6 +466,9 @@ def _init_worker(forest, model, run, cosmo) -> None:
 
     # Ctrl-C goes to the parent, which stops the workers itself (no tracebacks from them)
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+    # drop the free heap inherited from the parent, so the parent's writes to it (its
+    # own chunks reuse it) are not copy-on-write copies (bhgrow._alloc)
+    release_free_memory()
     _WORKER.update(forest=forest, model=model, run=run, cosmo=cosmo)
     threading.Thread(target=_exit_with_parent, args=(os.getppid(),), daemon=True).start()
 
@@ -537,8 +542,8 @@ def run_chunks(forest, plan: list, model, run, cosmo, *, workers: int = 1, clien
     model, run, cosmo
         As for :func:`bhgrow.engine.run_forest`.
     workers : int
-        Local worker processes (1 = this process; 0 = one per CPU core). Ignored with
-        ``client``.
+        Local workers: this process and ``workers - 1`` forked ones (0 = one per CPU
+        core). Ignored with ``client``.
     client : dask.distributed.Client, optional
         Send chunks to this Dask cluster.
     checkpoint : Checkpoint, optional
@@ -621,22 +626,63 @@ def _terminate(pool) -> None:
 
 def _run_pool(n_proc, forest, plan, todo, model, run, cosmo, done, started, start_method,
               checkpoint) -> None:
+    """Run ``todo`` on ``n_proc`` workers: ``n_proc - 1`` forked processes and this one.
+
+    Chunks are taken largest first from one queue by whichever worker is free. This process
+    runs its chunks in place: its memory is already in use (no pages to fault in afresh, as
+    a new process must for every array it writes) and its results need no transfer. A
+    feeder thread hands the pool's processes their chunks and saves their results as they
+    arrive; it only waits on the pool, so it hardly competes with this process's engine.
+    """
     import multiprocessing as mp
     from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
     from concurrent.futures.process import BrokenProcessPool
 
-    pool = ProcessPoolExecutor(max_workers=n_proc, mp_context=mp.get_context(start_method),
+    n_pool = n_proc - 1
+    pool = ProcessPoolExecutor(max_workers=n_pool, mp_context=mp.get_context(start_method),
                                initializer=_init_worker, initargs=(forest, model, run, cosmo))
+    queue = list(reversed(todo))              # pop() gives the largest chunk left
+    lock = threading.Lock()
+    stop = threading.Event()
+    failure: list = []
+
+    def take():
+        with lock:
+            return queue.pop() if queue and not failure else None
+
+    def finish(i, r):
+        with lock:
+            done(i, r)
+
+    def feed():
+        live = {}
+        try:
+            while not stop.is_set():
+                while len(live) < n_pool:
+                    i = take()
+                    if i is None:
+                        break
+                    live[pool.submit(_worker_chunk, i, plan[i])] = i
+                if not live:
+                    return
+                finished, _ = wait(list(live), timeout=0.2, return_when=FIRST_COMPLETED)
+                for fut in sorted(finished, key=live.get):
+                    del live[fut]
+                    finish(*fut.result())
+        except BaseException as exc:  # noqa: BLE001 - handed to the main thread
+            failure.append(exc)
+
+    feeder = threading.Thread(target=feed, name="bhgrow-pool-feeder", daemon=True)
     try:
-        index = {pool.submit(_worker_chunk, i, plan[i]): i for i in todo}  # largest first
-        pending = set(index)
+        feeder.start()
         started()
-        while pending:
-            finished, pending = wait(pending, return_when=FIRST_COMPLETED)
-            for fut in sorted(finished, key=index.get):
-                i, r = fut.result()
-                done(i, r)
+        while (i := take()) is not None:
+            finish(i, run_one_chunk(forest, plan[i], model, run, cosmo))
+        feeder.join()
+        if failure:
+            raise failure[0]
     except BrokenProcessPool:
+        stop.set()
         _terminate(pool)
         kept = (f"; finished chunks are kept in {checkpoint.directory}: rerun with --resume"
                 if checkpoint is not None else "")
@@ -645,6 +691,7 @@ def _run_pool(n_proc, forest, plan, todo, model, run, cosmo, done, started, star
                                f"use fewer --workers or a smaller run.chunk_nodes",
                                rule="worker_lost") from None
     except BaseException:
+        stop.set()
         _terminate(pool)
         raise
     pool.shutdown(wait=True)

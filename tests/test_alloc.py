@@ -24,3 +24,11 @@ def test_opt_out_leaves_the_allocator_alone():
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
                          env={"BHGROW_SYSTEM_MALLOC": "1", "PATH": ""}, check=True)
     assert out.stdout.strip() == "False"
+
+
+def test_release_free_memory_reports_a_bool_and_respects_the_opt_out():
+    assert isinstance(_alloc.release_free_memory(), bool)
+    code = "from bhgrow import _alloc; print(_alloc.release_free_memory())"
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         env={"BHGROW_SYSTEM_MALLOC": "1", "PATH": ""}, check=True)
+    assert out.stdout.strip() == "False"
