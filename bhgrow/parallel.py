@@ -654,15 +654,14 @@ def _run_pool(n_proc, forest, plan, todo, model, run, cosmo, done, started, star
         with lock:
             done(i, r)
 
-    def feed():
-        live = {}
+    def submit_more(live):
+        while len(live) < n_pool and (i := take()) is not None:
+            live[pool.submit(_worker_chunk, i, plan[i])] = i
+
+    def feed(live):
         try:
             while not stop.is_set():
-                while len(live) < n_pool:
-                    i = take()
-                    if i is None:
-                        break
-                    live[pool.submit(_worker_chunk, i, plan[i])] = i
+                submit_more(live)
                 if not live:
                     return
                 finished, _ = wait(list(live), timeout=0.2, return_when=FIRST_COMPLETED)
@@ -672,8 +671,14 @@ def _run_pool(n_proc, forest, plan, todo, model, run, cosmo, done, started, star
         except BaseException as exc:  # noqa: BLE001 - handed to the main thread
             failure.append(exc)
 
-    feeder = threading.Thread(target=feed, name="bhgrow-pool-feeder", daemon=True)
     try:
+        # the first chunks are submitted from this thread, before it reads or runs anything:
+        # the pool forks its processes then, so no other thread of this process holds a
+        # lock (HDF5's, the allocator's) that the children would inherit locked
+        live: dict = {}
+        submit_more(live)
+        feeder = threading.Thread(target=feed, args=(live,), name="bhgrow-pool-feeder",
+                                  daemon=True)
         feeder.start()
         started()
         while (i := take()) is not None:
