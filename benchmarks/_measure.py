@@ -28,6 +28,8 @@ import time
 import traceback
 import tracemalloc
 
+from bhgrow._alloc import release_free_memory  # hands free heap back before a call
+
 _STATUS = "/proc/self/status"
 
 
@@ -60,17 +62,6 @@ def peak_rss_bytes() -> int | None:
     """Peak resident set size since the last reset (Linux), else None."""
     v = _status_kib("VmHWM")
     return None if v is None else v * 1024
-
-
-def release_free_memory() -> None:
-    """Hand free heap pages back to the OS (glibc ``malloc_trim``), so that the RSS growth
-    of a call is not hidden by free memory the process already holds."""
-    try:
-        import ctypes
-
-        ctypes.CDLL("libc.so.6").malloc_trim(0)
-    except (OSError, AttributeError):
-        pass
 
 
 def _run(fn, traced: bool) -> dict:

@@ -18,13 +18,14 @@ peak resident-set growth stayed at 88 B/node, and the no-physics floor was uncha
 :func:`release_free_memory` hands a forked worker's inherited free heap back to the kernel
 (``malloc_trim``). After ``fork`` the parent's free heap pages are shared copy-on-write
 with the child, so every page the parent then writes again (its engine reuses them for its
-own chunks) is copied first: measured on a 8.4e6-node forest set with 2 workers
+own chunks) is copied first: measured on an 8.4e6-node forest set with 2 workers
 (2026-12-02), the parent's first chunk took 57-73k page faults and 0.3-0.8 s of system
 time, against none when no worker had been forked. Once the child has dropped its
 references, the parent's writes find the pages its own again.
 
 Both are no-ops where glibc is not the C library. Set the environment variable
-``BHGROW_SYSTEM_MALLOC=1`` to leave the allocator as it is.
+``BHGROW_SYSTEM_MALLOC=1`` to leave the allocator's settings as they are (the trim, which
+changes no setting, still runs).
 
 Reference: The GNU C Library Reference Manual, "Malloc Tunable Parameters" (``mallopt``:
 ``M_MMAP_THRESHOLD`` = -3, ``M_TRIM_THRESHOLD`` = -1; the largest ``M_MMAP_THRESHOLD`` on
@@ -68,8 +69,8 @@ def release_free_memory() -> bool:
 
 
 def _libc():
-    """glibc, or None (not Linux, not loadable, or the user opted out)."""
-    if not sys.platform.startswith("linux") or os.environ.get("BHGROW_SYSTEM_MALLOC") == "1":
+    """glibc, or None (not Linux, or not loadable)."""
+    if not sys.platform.startswith("linux"):
         return None
     try:
         return ctypes.CDLL("libc.so.6")
@@ -78,6 +79,8 @@ def _libc():
 
 
 def _apply() -> bool:
+    if os.environ.get("BHGROW_SYSTEM_MALLOC") == "1":
+        return False
     mallopt = getattr(_libc(), "mallopt", None)
     if mallopt is None:
         return False
