@@ -261,24 +261,23 @@ class Forest:
         if missing.size:
             raise BhgrowInputError(f"forest ids not present: {missing[:10].tolist()}",
                                    rule="unknown_forests", rows=missing[:10].tolist())
-        mask = keep_f[self.forest_index]
-        sub = Forest(node_id=self.node_id[mask], desc_id=self.desc_id[mask],
-                     forest_id=self.forest_id[mask], snap=self.snap[mask],
-                     mass_msun=self.mass_msun[mask], snapshots=self.snapshots,
-                     extra={k: v[mask] for k, v in self.extra.items()},
+        rows, run_start, run_first = self._rows_of(np.flatnonzero(keep_f))
+        sub = Forest(node_id=self.node_id[rows], desc_id=self.desc_id[rows],
+                     forest_id=self.forest_id[rows], snap=self.snap[rows],
+                     mass_msun=self.mass_msun[rows], snapshots=self.snapshots,
+                     extra={k: v[rows] for k, v in self.extra.items()},
                      forest_ids=self.forest_ids[keep_f],
                      forest_weight=None if self.forest_weight is None
                      else self.forest_weight[keep_f],
                      box_mpc=self.box_mpc, meta=dict(self.meta))
         # whole forests keep their (snap, forest, node) order and every link stays inside
         # them, so the index is the parent's, renumbered (no sorting; equals sub._index()).
-        # Only arrays of the selection's size: a row's new number is its rank among the
-        # kept rows (a search), not a look-up in an array of the parent's size
-        rows = np.flatnonzero(mask)
-        del mask
-
+        # Only arrays of the selection's size, no pass over the parent's rows
         def renumber(r):
-            return np.searchsorted(rows, r).astype(np.int64)
+            # a kept row's new number: its run's place in the selection plus its offset in
+            # the run (a search among the runs, far fewer than the rows)
+            j = np.searchsorted(run_start, r, side="right") - 1
+            return run_first[j] + (r - run_start[j])
 
         d = self.desc_index[rows]
         sub.desc_index = np.where(d >= 0, renumber(d), -1).astype(np.int64)
@@ -296,6 +295,28 @@ class Forest:
             self.snap_offsets.dtype)
         sub.forest_index = (np.cumsum(keep_f) - 1)[self.forest_index[rows]]
         return sub
+
+    def _rows_of(self, fpos: np.ndarray) -> tuple:
+        """Rows of the forests at positions ``fpos`` (sorted) of :attr:`forest_ids`, in row
+        order, and the first row and place in that list of each run of consecutive rows.
+
+        Rows are sorted by snapshot, then forest, so within each snapshot a forest's rows
+        are one run, found by a search: the work is per snapshot and kept forest plus per
+        kept row, never per row of the whole table.
+        """
+        fi = self.forest_index
+        starts, stops = [], []
+        for k in range(len(self.snap_offsets) - 1):
+            a, b = int(self.snap_offsets[k]), int(self.snap_offsets[k + 1])
+            seg = fi[a:b]
+            starts.append(a + np.searchsorted(seg, fpos, side="left"))
+            stops.append(a + np.searchsorted(seg, fpos, side="right"))
+        starts, stops = np.concatenate(starts), np.concatenate(stops)
+        keep = stops > starts
+        starts, counts = starts[keep], (stops - starts)[keep]
+        first = np.cumsum(counts) - counts          # position of each run in the result
+        rows = np.arange(int(counts.sum()), dtype=np.int64) + np.repeat(starts - first, counts)
+        return rows, starts, first
 
     def chunks(self, max_nodes: int) -> Iterator["Forest"]:
         """Yield sub-forests of whole forests with at most ``max_nodes`` nodes each.

@@ -6,7 +6,7 @@ import pytest
 from bhgrow.trees import Forest
 
 
-@pytest.mark.parametrize("frac", [0.05, 0.5, 1.0])
+@pytest.mark.parametrize("frac", [0.0, 0.01, 0.05, 0.5, 1.0])
 def test_selected_forests_index_equals_a_fresh_index(frac):
     # select_forests renumbers the parent's index instead of sorting again: the arrays
     # must equal those Forest._index builds from scratch for the same rows
@@ -20,6 +20,10 @@ def test_selected_forests_index_equals_a_fresh_index(frac):
                    extra=sub.extra, forest_ids=sub.forest_ids,
                    forest_weight=sub.forest_weight, box_mpc=sub.box_mpc, meta=sub.meta)
     fresh._index()
+    # the rows are those of a mask over the parent, in the parent's order
+    keep = np.isin(f.forest_id, ids)
+    for name in ("node_id", "desc_id", "forest_id", "snap", "mass_msun"):
+        np.testing.assert_array_equal(getattr(sub, name), getattr(f, name)[keep], err_msg=name)
     for name in ("desc_index", "prog_index", "prog_offsets", "main_prog", "snap_offsets",
                  "forest_index"):
         a, b = getattr(sub, name), getattr(fresh, name)
