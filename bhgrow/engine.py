@@ -410,31 +410,33 @@ def _snapshot(w: _Walk, k: int) -> None:
     hosted = np.zeros(rows.size, dtype=bool)
     if len(bh):
         hosted[bh.host[in_slice] - sl.start] = True
-    ud = np.zeros(0, dtype=np.int64)
     if d.size:
         # progenitors add to their descendant in row order (np.add.at: unbuffered)
         db = d - base
         for arr, arr_sl in ((gas, gas_sl), (stars, stars_sl), (metals, metals_sl)):
             np.add.at(arr, db, arr_sl[has_desc])
         polluted[db[polluted[ls][has_desc] | (stars_sl[has_desc] > 0) | hosted[has_desc]]] = True
-        ud = lo + np.flatnonzero(np.bincount(d - lo, minlength=span))
     roots = np.flatnonzero(~has_desc)
     moved = _move_black_holes(bh, in_slice, desc, forest, k, len(t_snap), t_snap, w.z_snap,
                               mass_h, model, run, cosmo)
     if roots.size:
         _baryon_check(w, sl, roots, gas_sl, stars_sl, m, in_slice)
     # baryon cap on the receiving descendants: gas above f_b M_desc is stripped (applied
-    # at every arrival, so a descendant fed from several snapshots is capped each time)
-    if ud.size:
-        bh_in = np.bincount(bh.host[moved] - lo, weights=bh.mass[moved],
-                            minlength=span)[ud - lo] if moved.size else 0.0
-        ub = ud - base
-        g_ud = gas[ub]
-        excess = g_ud + stars[ub] + bh_in - fb * mass_h[ud]
+    # at every arrival, so a descendant fed from several snapshots is capped each time);
+    # on the descendants' row range [lo, lo + span) as slices, the receiving rows masked
+    if d.size:
+        w0 = lo - base
+        g_sp = gas[w0:w0 + span]
+        excess = g_sp + stars[w0:w0 + span]
+        if moved.size:
+            excess += np.bincount(bh.host[moved] - lo, weights=bh.mass[moved], minlength=span)
+        excess -= fb * mass_h[lo:lo + span]
+        receives = np.zeros(span, dtype=bool)
+        receives[d - lo] = True
         # only where there is something to strip (or no gas left to hold metals)
-        sel = np.flatnonzero((excess > 0.0) | (g_ud <= 0.0))
+        sel = np.flatnonzero(receives & ((excess > 0.0) | (g_sp <= 0.0)))
         if sel.size:
-            us, gs = ub[sel], g_ud[sel]
+            us, gs = w0 + sel, g_sp[sel]
             cut = np.clip(excess[sel], 0.0, gs)
             metals[us] *= np.divide(gs - cut, gs, out=np.zeros(sel.size),
                                     where=gs > 0)    # stripped gas takes its metals
