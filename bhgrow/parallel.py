@@ -48,6 +48,7 @@ import sys
 import threading
 import time
 from dataclasses import replace
+from functools import partial
 from pathlib import Path
 
 import numpy as np
@@ -458,10 +459,15 @@ def run_one_chunk(forest, ids, model, run, cosmo):
     return replace(res, chunk_s=time.perf_counter() - t0)
 
 
+def _plan_chunk(forest, plan, model, run, cosmo, index: int):
+    """Chunk ``index`` of ``plan`` (a task of :func:`_run_pool`)."""
+    return run_one_chunk(forest, plan[index], model, run, cosmo)
+
+
 _WORKER: dict = {}
 
 
-def _init_worker(forest, model, run, cosmo) -> None:
+def _init_worker(task) -> None:
     import signal
 
     # Ctrl-C goes to the parent, which stops the workers itself (no tracebacks from them)
@@ -469,7 +475,7 @@ def _init_worker(forest, model, run, cosmo) -> None:
     # drop the free heap inherited from the parent, so the parent's writes to it (its
     # own chunks reuse it) are not copy-on-write copies (bhgrow._alloc)
     release_free_memory()
-    _WORKER.update(forest=forest, model=model, run=run, cosmo=cosmo)
+    _WORKER["task"] = task
     threading.Thread(target=_exit_with_parent, args=(os.getppid(),), daemon=True).start()
 
 
@@ -480,9 +486,8 @@ def _exit_with_parent(ppid: int) -> None:
     os._exit(1)
 
 
-def _worker_chunk(index: int, ids):
-    w = _WORKER
-    return index, run_one_chunk(w["forest"], ids, w["model"], w["run"], w["cosmo"])
+def _worker_task(index: int):
+    return index, _WORKER["task"](index)
 
 
 def _dask_chunk(index: int, sub, model, run, cosmo):
@@ -599,8 +604,11 @@ def run_chunks(forest, plan: list, model, run, cosmo, *, workers: int = 1, clien
             for i in todo:
                 done(i, run_one_chunk(forest, plan[i], model, run, cosmo))
         else:
-            _run_pool(n_proc, forest, plan, todo, model, run, cosmo, done, open_bar,
-                      start_method or default_start_method(), checkpoint)
+            kept = (f"; finished chunks are kept in {checkpoint.directory}: rerun with "
+                    f"--resume" if checkpoint is not None else "")
+            _run_pool(n_proc, partial(_plan_chunk, forest, plan, model, run, cosmo), todo,
+                      done, open_bar, start_method or default_start_method(),
+                      f"running chunks of whole forests{kept}")
     except KeyboardInterrupt:
         interrupted = True
         raise
@@ -624,15 +632,40 @@ def _terminate(pool) -> None:
     pool.shutdown(wait=False, cancel_futures=True)
 
 
-def _run_pool(n_proc, forest, plan, todo, model, run, cosmo, done, started, start_method,
-              checkpoint) -> None:
-    """Run ``todo`` on ``n_proc`` workers: ``n_proc - 1`` forked processes and this one.
+def map_tasks(task, n_tasks: int, workers: int, *, what: str,
+              start_method: str | None = None) -> list:
+    """``[task(0), ..., task(n_tasks - 1)]`` on ``workers`` local workers (this process and
+    ``workers - 1`` forked ones, as for the chunk runs), taken in index order.
 
-    Chunks are taken largest first from one queue by whichever worker is free. This process
-    runs its chunks in place: its memory is already in use (no pages to fault in afresh, as
-    a new process must for every array it writes) and its results need no transfer. A
-    feeder thread hands the pool's processes their chunks and saves their results as they
-    arrive; it only waits on the pool, so it hardly competes with this process's engine.
+    ``task`` must be picklable where workers are not forked (``functools.partial`` of a
+    module-level function); only indices and results travel between processes. ``what``
+    completes the message raised if a worker dies ("... while {what}").
+    """
+    out: list = [None] * n_tasks
+    n_proc = min(n_local_workers(workers), n_tasks)
+
+    def done(i, r):
+        out[i] = r
+
+    if n_proc <= 1:
+        for i in range(n_tasks):
+            done(i, task(i))
+    else:
+        _run_pool(n_proc, task, list(range(n_tasks)), done, lambda: None,
+                  start_method or default_start_method(), what)
+    return out
+
+
+def _run_pool(n_proc, task, todo, done, started, start_method, what) -> None:
+    """Run ``task(i)`` for ``i`` in ``todo`` on ``n_proc`` workers: ``n_proc - 1`` forked
+    processes and this one; ``done(i, result)`` in this process's threads (under a lock).
+
+    Tasks are taken in the order of ``todo`` (for chunks: largest first) from one queue by
+    whichever worker is free. This process runs its tasks in place: its memory is already
+    in use (no pages to fault in afresh, as a new process must for every array it writes)
+    and its results need no transfer. A feeder thread hands the pool's processes their
+    tasks and passes their results on as they arrive; it only waits on the pool, so it
+    hardly competes with this process's work.
     """
     import multiprocessing as mp
     from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
@@ -640,7 +673,7 @@ def _run_pool(n_proc, forest, plan, todo, model, run, cosmo, done, started, star
 
     n_pool = n_proc - 1
     pool = ProcessPoolExecutor(max_workers=n_pool, mp_context=mp.get_context(start_method),
-                               initializer=_init_worker, initargs=(forest, model, run, cosmo))
+                               initializer=_init_worker, initargs=(task,))
     queue = list(reversed(todo))              # pop() gives the largest chunk left
     lock = threading.Lock()
     stop = threading.Event()
@@ -656,7 +689,7 @@ def _run_pool(n_proc, forest, plan, todo, model, run, cosmo, done, started, star
 
     def submit_more(live):
         while len(live) < n_pool and (i := take()) is not None:
-            live[pool.submit(_worker_chunk, i, plan[i])] = i
+            live[pool.submit(_worker_task, i)] = i
 
     def feed(live):
         try:
@@ -682,19 +715,16 @@ def _run_pool(n_proc, forest, plan, todo, model, run, cosmo, done, started, star
         feeder.start()
         started()
         while (i := take()) is not None:
-            finish(i, run_one_chunk(forest, plan[i], model, run, cosmo))
+            finish(i, task(i))
         feeder.join()
         if failure:
             raise failure[0]
     except BrokenProcessPool:
         stop.set()
         _terminate(pool)
-        kept = (f"; finished chunks are kept in {checkpoint.directory}: rerun with --resume"
-                if checkpoint is not None else "")
         raise BhgrowInputError(f"a worker process died (killed, or out of memory?) while "
-                               f"running chunks of whole forests{kept}. If memory ran out, "
-                               f"use fewer --workers or a smaller run.chunk_nodes",
-                               rule="worker_lost") from None
+                               f"{what}. If memory ran out, use fewer --workers or a smaller "
+                               f"run.chunk_nodes", rule="worker_lost") from None
     except BaseException:
         stop.set()
         _terminate(pool)

@@ -303,3 +303,32 @@ def test_killed_worker_loses_only_chunks_in_flight(tmp_path, small, monkeypatch,
     assert main(args + ["--resume"]) == 0
     assert not Checkpoint.directory_for(out).exists()
     _same_products(small["ref"], out)
+
+
+# --------------------------------------------------------------------------- map_tasks
+def _square_or_fail(bad: int, i: int):
+    if i == bad:
+        raise BhgrowInputError(f"task {i} refused", rule="test")
+    return os.getpid(), i * i
+
+
+def test_map_tasks_keeps_index_order_and_uses_both_processes():
+    from functools import partial
+
+    from bhgrow.parallel import map_tasks
+
+    got = map_tasks(partial(_square_or_fail, -1), 40, 2, what="testing")
+    assert [r[1] for r in got] == [i * i for i in range(40)]
+    assert os.getpid() in {r[0] for r in got}           # this process works as one worker
+    assert map_tasks(partial(_square_or_fail, -1), 3, 1, what="testing") == \
+        [(os.getpid(), i * i) for i in range(3)]
+    assert map_tasks(partial(_square_or_fail, -1), 0, 2, what="testing") == []
+
+
+def test_map_tasks_raises_a_task_error_in_this_process():
+    from functools import partial
+
+    from bhgrow.parallel import map_tasks
+
+    with pytest.raises(BhgrowInputError, match="task 7 refused"):
+        map_tasks(partial(_square_or_fail, 7), 20, 2, what="testing")

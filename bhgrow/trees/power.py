@@ -89,7 +89,6 @@ from dataclasses import dataclass, field
 
 import numpy as np
 from scipy.interpolate import CubicSpline
-from scipy.signal import fftconvolve
 
 from .. import _validate
 from .._grid import UniformCubicSpline
@@ -646,6 +645,10 @@ class LinearPower:
         x = np.exp(lnk[0] + ln_r[0] + _LNK_STEP * np.arange(n_x))
         w, xdw = tophat_window(x)
         # sigma^2(R_i) = sum_j weight_j W^2(k_j R_i) (trapezoid in ln k; Peebles 1980, memory)
+        # imported here: scipy.signal takes ~0.4 s to import, and only tree generation
+        # needs it (not every `bhgrow run`)
+        from scipy.signal import fftconvolve
+
         sig2 = fftconvolve(w * w, weight[::-1], mode="valid")[::_LNR_STRIDE]
         # d sigma^2 / dln R = sum_j weight_j 2 W x W'(x) (derivative of the line above)
         dsig2 = fftconvolve(2.0 * w * xdw, weight[::-1], mode="valid")[::_LNR_STRIDE]

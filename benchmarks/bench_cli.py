@@ -1,0 +1,185 @@
+"""Benchmark: a whole ``bhgrow run`` as a user starts it, with 1 and with 2 local workers.
+
+``bench_balance.py`` times the chunk runs alone (:func:`bhgrow.parallel.run_chunks`). A user
+times the command: start-up (imports), opening and checking the HDF5 forest file, the chunk
+runs (each worker reads its chunks from the file), merging the chunk results, the merger
+catalogue with its LISA SNRs, and writing the run directory (catalogues, histories, tables,
+figures, summary). Only the chunk runs are shared among the workers, so the speed-up of the
+command is that of the chunk runs diluted by the rest (Amdahl's law: with a serial share
+``s`` of the one-worker time, two workers give at most ``1 / (s + (1 - s) / 2)``).
+
+Cases, each in a new process, alternated in ``--repeat`` rounds (the development machine's
+vCPUs change speed by 10-30% over minutes, so the two worker counts are compared within a
+round and the median of the per-round ratios is reported):
+
+1. **command** -- ``bhgrow run --trees FILE -o DIR --workers N --no-progress``: wall time
+   and the CPU time of the process and its children (``os.wait4``-style ``resource``
+   accounting of the finished child);
+2. **stages** -- the same steps through the Python API in a new process, each timed:
+   imports, ``open_forests`` (reads the index and checks the whole file), ``run_model``
+   split into the chunk runs and the rest (merging, catalogues, LISA SNRs), and
+   ``write_run`` split into the catalogues/histories and the products (tables, figures).
+
+The forest file: ``--trees FILE`` (a bhgrow HDF5 file), or by default the forest set of
+``bench_balance.py`` (17,000 toy forests + one 1e15 Msun cluster forest, 8.4e6 nodes),
+built once and written to a temporary HDF5 file by this bhgrow's writer.
+
+    python benchmarks/bench_cli.py [--trees FILE] [--repeat 3] [--workers 2]
+        [--forests 17000] [--cluster-resolution 3e5]
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import resource
+import shutil
+import statistics
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+_STAGES = r"""
+import json, sys, time
+t0 = time.perf_counter()
+from bhgrow import parallel, pipeline, products
+from bhgrow.config import load_config
+from bhgrow.trees.io import open_forests
+t = {"imports": time.perf_counter() - t0}
+trees, out, workers = sys.argv[1], sys.argv[2], int(sys.argv[3])
+cfg = load_config(None)
+s = time.perf_counter()
+forest = open_forests(trees, max_nodes=cfg.run.chunk_nodes)
+t["open_and_check"] = time.perf_counter() - s
+inner = {}
+def timed(name, fn):
+    def wrapper(*a, **k):
+        s = time.perf_counter()
+        try:
+            return fn(*a, **k)
+        finally:
+            inner[name] = inner.get(name, 0.0) + time.perf_counter() - s
+    return wrapper
+parallel.run_chunks = timed("chunks", parallel.run_chunks)
+products.make_products = timed("products", products.make_products)
+s = time.perf_counter()
+res = pipeline.run_model(forest, cfg, workers=workers, trees_path=trees)
+t["run_model"] = time.perf_counter() - s
+t["chunks"] = inner["chunks"]
+t["merge_and_catalogues"] = t["run_model"] - t["chunks"]
+s = time.perf_counter()
+pipeline.write_run(res, cfg, out)
+t["write_run"] = time.perf_counter() - s
+t["products"] = inner["products"]
+t["write_files"] = t["write_run"] - t["products"]
+t["total"] = time.perf_counter() - t0
+print(json.dumps(t))
+"""
+
+
+def build_file(args, path: Path) -> int:
+    """Write the bench_balance forest set to ``path``; its node count."""
+    sys.path.insert(0, str(Path(__file__).parent))
+    from bench_balance import build_forest_set
+
+    from bhgrow.trees.io import write_hdf5
+
+    ns = argparse.Namespace(seed=args.seed, snaps=40, z_start=15.0, cluster_log_mass=15.0,
+                            cluster_resolution=args.cluster_resolution, cluster_p_split=1.0,
+                            box_mpc=100.0, cluster_share=0.2, forests=args.forests)
+    forest, _, _ = build_forest_set(ns)
+    write_hdf5(forest, path, overwrite=True)
+    return forest.n_nodes
+
+
+def run_command(trees: Path, out: Path, workers: int) -> dict:
+    """``bhgrow run`` in a new process: wall and CPU seconds (process + children)."""
+    shutil.rmtree(out, ignore_errors=True)
+    before = resource.getrusage(resource.RUSAGE_CHILDREN)
+    t0 = time.perf_counter()
+    proc = subprocess.run([sys.executable, "-m", "bhgrow", "run", "--trees", str(trees),
+                           "-o", str(out), "--workers", str(workers), "--no-progress"],
+                          capture_output=True, text=True)
+    wall = time.perf_counter() - t0
+    after = resource.getrusage(resource.RUSAGE_CHILDREN)
+    if proc.returncode:
+        raise SystemExit(f"bhgrow run failed ({proc.returncode}):\n{proc.stderr}")
+    cpu = (after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime)
+    shutil.rmtree(out, ignore_errors=True)
+    return {"wall": wall, "cpu": cpu}
+
+
+def run_stages(trees: Path, out: Path, workers: int) -> dict:
+    shutil.rmtree(out, ignore_errors=True)
+    proc = subprocess.run([sys.executable, "-c", _STAGES, str(trees), str(out), str(workers)],
+                          capture_output=True, text=True)
+    if proc.returncode:
+        raise SystemExit(f"stage run failed ({proc.returncode}):\n{proc.stderr}")
+    shutil.rmtree(out, ignore_errors=True)
+    return json.loads(proc.stdout.strip().splitlines()[-1])
+
+
+def main(argv=None) -> None:
+    p = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    p.add_argument("--trees", type=Path, help="bhgrow HDF5 forest file (default: build the "
+                   "bench_balance forest set)")
+    p.add_argument("--workers", type=int, default=2)
+    p.add_argument("--repeat", type=int, default=3)
+    p.add_argument("--forests", type=int, default=17000)
+    p.add_argument("--cluster-resolution", type=float, default=3e5)
+    p.add_argument("--seed", type=int, default=11)
+    args = p.parse_args(argv)
+
+    tmp = Path(tempfile.mkdtemp(prefix="bhgrow_bench_cli_"))
+    try:
+        trees = args.trees
+        if trees is None:
+            trees = tmp / "forests.h5"
+            t = time.perf_counter()
+            n = build_file(args, trees)
+            print(f"forest file: {n:,} nodes written to {trees} in "
+                  f"{time.perf_counter() - t:.1f} s")
+        print(f"{os.cpu_count()} CPUs; load average {os.getloadavg()[0]:.2f} "
+              f"(parallel timings need an otherwise idle machine)")
+        w2 = args.workers
+        rows = {1: [], w2: []}
+        ratios = []
+        for r in range(args.repeat):
+            order = (1, w2) if r % 2 == 0 else (w2, 1)
+            got = {w: run_command(trees, tmp / f"run_{w}", w) for w in order}
+            for w in order:
+                rows[w].append(got[w])
+            ratios.append(got[1]["wall"] / got[w2]["wall"])
+            print(f"round {r + 1}: bhgrow run, 1 worker {got[1]['wall']:.2f} s wall "
+                  f"({got[1]['cpu']:.2f} CPU s), {w2} workers {got[w2]['wall']:.2f} s wall "
+                  f"({got[w2]['cpu']:.2f} CPU s): speed-up {ratios[-1]:.2f}", flush=True)
+        med = statistics.median(ratios)
+        print(f"\nbhgrow run speed-up with {w2} workers, median of {len(ratios)} rounds: "
+              f"{med:.2f} (rounds {', '.join(f'{x:.2f}' for x in ratios)})")
+
+        print("\nstages (Python API, new process each; seconds):")
+        keys = ("imports", "open_and_check", "chunks", "merge_and_catalogues",
+                "write_files", "products", "total")
+        print("| workers | " + " | ".join(keys) + " |")
+        print("|---:|" + "---:|" * len(keys))
+        stage = {}
+        for w in (1, w2):
+            stage[w] = run_stages(trees, tmp / f"stages_{w}", w)
+            print(f"| {w} | " + " | ".join(f"{stage[w][k]:.2f}" for k in keys) + " |",
+                  flush=True)
+        s1 = stage[1]
+        serial = s1["total"] - s1["chunks"]
+        share = serial / s1["total"]
+        print(f"\nwith 1 worker, {share:.0%} of the time is outside the chunk runs; the "
+              f"chunk runs alone went {s1['chunks'] / stage[w2]['chunks']:.2f}x faster with "
+              f"{w2} workers; Amdahl bound for the command with a perfect {w2}-worker chunk "
+              f"stage: {1.0 / (share + (1.0 - share) / w2):.2f}x")
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)
+
+
+if __name__ == "__main__":
+    main()
