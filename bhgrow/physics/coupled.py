@@ -302,27 +302,34 @@ def _newton(fdf, lo, hi, args, s0):
     chunk). At most :data:`_ROOT_ITERS` iterations. Returns the accepted points, else the
     last point known to have ``f >= 0``.
     """
-    s = s0
     out = lo.copy()
-    act = np.arange(lo.size)                # elements still iterating
+    # iterate, bracket, element index (as float: exact) and the arguments as rows of one
+    # array, so dropping accepted elements is one gather instead of one per array (most
+    # iterations of a call run on a few elements, where numpy's cost per call dominates)
+    rows = np.empty((4 + len(args), lo.size))
+    rows[0], rows[1], rows[2], rows[3] = s0, lo, hi, np.arange(lo.size)
+    for r, x in zip(rows[4:], args):
+        r[...] = x
     for _ in range(_ROOT_ITERS):
-        f, df, band = fdf(s, *args)
+        s = rows[0]
+        f, df, band = fdf(s, *rows[4:])
         up = f >= 0.0
         ok = up & (f <= band)
         if ok.all():
-            out[act] = s
+            out[rows[3].astype(np.intp)] = s
             return out
         if ok.any():
-            out[act[ok]] = s[ok]
-            keep = np.flatnonzero(~ok)
-            act, s, f, df, band, up = act[keep], s[keep], f[keep], df[keep], band[keep], up[keep]
-            lo, hi = lo[keep], hi[keep]
-            args = tuple(x[keep] for x in args)
-        lo = np.where(up, s, lo)
-        hi = np.where(up, hi, s)
+            out[rows[3][ok].astype(np.intp)] = s[ok]
+            keep = ~ok
+            rows = rows[:, keep]
+            f, df, band, up = f[keep], df[keep], band[keep], up[keep]
+            s = rows[0]
+        lo, hi = rows[1], rows[2]
         nxt = s - (f - 0.5 * band) / df
-        s = np.where((nxt > lo) & (nxt < hi), nxt, 0.5 * (lo + hi))
-    out[act] = lo
+        np.copyto(lo, s, where=up)
+        np.copyto(hi, s, where=~up)
+        s[...] = np.where((nxt > lo) & (nxt < hi), nxt, 0.5 * (lo + hi))
+    out[rows[3].astype(np.intp)] = rows[1]
     return out
 
 
