@@ -21,7 +21,9 @@ from __future__ import annotations
 import hashlib
 import json
 import os
+import re
 import shutil
+import sys
 from pathlib import Path
 
 import numpy as np
@@ -76,30 +78,230 @@ class RunDirectory:
         return False
 
 
-def write_ecsv(table, path: Path, meta: dict | None = None) -> None:
-    """Write an astropy Table as comma-separated ECSV (readable by pandas with comment='#')."""
+#: rows formatted at a time by :func:`write_ecsv` (the strings of a slice are held in
+#: memory: ~0.14 kB per value)
+ECSV_CHUNK_ROWS = 10_000
+
+#: characters that make astropy's ECSV writer quote a string value (Python csv,
+#: QUOTE_MINIMAL, comma delimiter); or a value with leading/trailing blanks (stripped)
+_ECSV_SPECIAL = re.compile(r'[,"\r\n\x00]|^[ \t]|[ \t]$')
+
+
+def write_ecsv(table, path: Path, meta: dict | None = None, *,
+               chunk_rows: int | None = None) -> None:
+    """Write an astropy Table as comma-separated ECSV (readable by pandas with comment='#').
+
+    The file is the same, byte for byte, as ``table.write(path, format="ascii.ecsv",
+    delimiter=",")`` (tested): astropy writes the header (from the zero-row table) and the
+    rows are formatted here, a column at a time, as astropy's ECSV writer formats them
+    (``str`` of each value, comma-joined, one line per row), two to three times faster.
+    Tables this fast path does not cover (masked, mixin, multidimensional, object or bytes
+    columns, strings that need CSV quoting or lose blanks, objects other than a Table) are
+    written by astropy whole.
+
+    Parameters
+    ----------
+    table : astropy.table.Table
+        Table to write; ``meta`` is merged into ``table.meta`` first.
+    path : path-like
+        File to write (overwritten).
+    meta : dict, optional
+        Extra table metadata (written in the header).
+    chunk_rows : int, optional
+        Rows formatted at a time (bounds memory); default :data:`ECSV_CHUNK_ROWS`.
+    """
     if meta:
         table.meta.update(meta)
-    table.write(path, format="ascii.ecsv", delimiter=",", overwrite=True)
+    columns = _ecsv_fast_columns(table)
+    if columns is None:
+        table.write(path, format="ascii.ecsv", delimiter=",", overwrite=True)
+        return
+    import io
+
+    head = io.StringIO(newline="")
+    table[:0].write(head, format="ascii.ecsv", delimiter=",")
+    step = max(1, int(chunk_rows or ECSV_CHUNK_ROWS))
+    # same open() as astropy's writer (locale encoding, no newline translation)
+    with open(path, "w", newline="") as fh:
+        fh.write(head.getvalue())
+        for start in range(0, len(table), step):
+            strs = [fmt(arr[start:start + step]) for arr, fmt in columns]
+            fh.write(os.linesep.join(map(",".join, zip(*strs))))
+            fh.write(os.linesep)
 
 
-def write_histories(cols: dict, path: Path) -> None:
-    """Histories in HDF5: one dataset per column plus a per-black-hole row index."""
+def _ecsv_fast_columns(table):
+    """(array, formatter) per column for :func:`write_ecsv`, or None if astropy must write.
+
+    Each formatter returns the strings astropy's ECSV writer puts in the file for a slice of
+    the column (``str(col[i])`` of the numpy scalar, with blanks stripped and CSV quoting;
+    only values that need neither are accepted here).
+    """
+    from astropy.table import MaskedColumn, Table
+
+    if (not isinstance(table, Table) or not len(table.colnames) or table.masked
+            or table.has_mixin_columns):
+        return None
+    # numpy's legacy print modes change str() of float scalars (repr(float) no longer agrees)
+    plain_floats = np.get_printoptions().get("legacy", False) in (False, None, sys.maxsize)
+    out = []
+    for name in table.colnames:
+        col = table[name]
+        if isinstance(col, MaskedColumn) or col.ndim != 1:
+            return None
+        arr = col.view(np.ndarray)
+        kind = arr.dtype.kind
+        if kind == "f" and arr.dtype == np.float64 and plain_floats:
+            out.append((arr, _float64_strs))
+        elif kind in "biu":
+            out.append((arr, _plain_strs))     # str(np.int64(k)) == str(int(k)), bools too
+        elif kind == "f":
+            out.append((arr, _scalar_strs))
+        elif kind == "U":
+            values = set()
+            for start in range(0, arr.size, ECSV_CHUNK_ROWS):   # distinct values only
+                values.update(arr[start:start + ECSV_CHUNK_ROWS].tolist())
+            if any(_ECSV_SPECIAL.search(v) for v in values) or (
+                    len(table.colnames) == 1 and "" in values):
+                return None                     # needs quoting or stripping: astropy writes
+            out.append((arr, _plain_strs))
+        else:
+            return None
+    return out
+
+
+def _plain_strs(a: np.ndarray) -> list:
+    return list(map(str, a.tolist()))
+
+
+def _scalar_strs(a: np.ndarray) -> list:
+    return [str(x) for x in a]      # numpy scalars, as astropy formats them
+
+
+def _float64_strs(a: np.ndarray) -> list:
+    """``str(np.float64(x))`` of each value, computed as ``repr(float(x))``.
+
+    Both are the shortest round-trip text with the same switch to exponent notation
+    (checked on random bit patterns and edge values; tested), and the Python float's repr
+    is faster. A slice with few distinct values (a constant weight, snapshot redshifts)
+    formats each distinct bit pattern once (bits, not values: 0.0 and -0.0 print
+    differently, NaN != NaN).
+    """
+    if a.size > 2048:
+        probe = a[:: a.size // 512].view(np.int64)
+        if np.unique(probe).size * 4 < probe.size:
+            bits, inverse = np.unique(a.view(np.int64), return_inverse=True)
+            strs = np.array(list(map(repr, bits.view(np.float64).tolist())), dtype=object)
+            return strs[inverse].tolist()
+    return list(map(repr, a.tolist()))
+
+
+#: gzip level of the history datasets (h5py's default for compression="gzip")
+HISTORIES_GZIP_LEVEL = 4
+
+
+def write_histories(cols: dict, path: Path, *, threads: int | None = None) -> None:
+    """Histories in HDF5: one dataset per column plus a per-black-hole row index.
+
+    Each column is a chunked dataset with the shuffle and gzip (level 4) filters, chunk shape
+    chosen by h5py. Compressing is nearly all the time spent here, and HDF5 does it on one
+    core; so the chunks of 1-d numeric columns are shuffled and deflated here by ``threads``
+    threads (zlib releases the GIL) and stored with ``write_direct_chunk``: the same filters,
+    chunks and values as HDF5 writing them itself (tested), and the stored chunks are the same
+    bytes when Python's zlib is the one HDF5 uses (as here).
+
+    Parameters
+    ----------
+    cols : dict
+        Column name -> 1-d array, one row per (black hole, snapshot), sorted by ``bh_id``.
+    path : path-like
+        File to write.
+    threads : int, optional
+        Compressing threads; default the usable CPU cores (at most 8).
+    """
     import h5py
 
     units = {"t_gyr": "Gyr", "z": "", "mass_msun": "Msun", "mdot_msun_yr": "Msun/yr",
              "eddington_ratio": "", "host_gas_msun": "Msun", "bh_id": ""}
-    with h5py.File(path, "w") as h5:
-        h5.attrs["format"] = "bhgrow-histories"
-        h5.attrs["schema_version"] = 1
-        for name, arr in cols.items():
-            ds = h5.create_dataset(name, data=arr, compression="gzip", shuffle=True)
-            ds.attrs["unit"] = units.get(name, "")
-        ids = np.asarray(cols["bh_id"])
-        uniq, start = np.unique(ids, return_index=True)
-        g = h5.create_group("index")
-        g.create_dataset("bh_id", data=uniq)
-        g.create_dataset("offset", data=np.r_[start, ids.size].astype(np.int64))
+    if threads is None:
+        threads = min(8, len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity")
+                      else (os.cpu_count() or 1))
+    pool = None
+    try:
+        with h5py.File(path, "w") as h5:
+            h5.attrs["format"] = "bhgrow-histories"
+            h5.attrs["schema_version"] = 1
+            for name, arr in cols.items():
+                arr = np.asarray(arr)
+                if _direct_chunks_ok(arr):
+                    ds = h5.create_dataset(name, shape=arr.shape, dtype=arr.dtype,
+                                           compression="gzip", shuffle=True)
+                    if threads > 1 and pool is None:
+                        from concurrent.futures import ThreadPoolExecutor
+
+                        pool = ThreadPoolExecutor(threads)
+                    _write_deflated_chunks(ds, np.ascontiguousarray(arr), pool, threads)
+                else:
+                    ds = h5.create_dataset(name, data=arr, compression="gzip", shuffle=True)
+                ds.attrs["unit"] = units.get(name, "")
+            ids = np.asarray(cols["bh_id"])
+            uniq, start = np.unique(ids, return_index=True)
+            g = h5.create_group("index")
+            g.create_dataset("bh_id", data=uniq)
+            g.create_dataset("offset", data=np.r_[start, ids.size].astype(np.int64))
+    finally:
+        if pool is not None:
+            pool.shutdown()
+
+
+def _direct_chunks_ok(arr: np.ndarray) -> bool:
+    """Whether :func:`_write_deflated_chunks` can store ``arr`` (1-d, non-empty, native
+    integer or float: types whose HDF5 storage is the array's bytes)."""
+    return (arr.ndim == 1 and arr.size > 0 and arr.dtype.kind in "iuf"
+            and arr.dtype.isnative)
+
+
+def _write_deflated_chunks(ds, arr: np.ndarray, pool, threads: int = 1) -> None:
+    """Fill the 1-d chunked dataset ``ds`` (shuffle + gzip filters) with ``arr``.
+
+    The chunks are compressed in ``pool`` (``threads`` threads; here if None) as HDF5's
+    filters would: the last chunk is padded with the fill value 0 to the full chunk size,
+    bytes are shuffled (all first bytes of the items, then all second bytes, ...) and
+    zlib-compressed. At most four chunks per thread are compressed ahead of the one being
+    stored (bounded memory).
+    """
+    import zlib
+    from collections import deque
+
+    size = ds.chunks[0]
+    item = arr.dtype.itemsize
+
+    def deflate(start):
+        part = arr[start:start + size]
+        if part.size < size:
+            part = np.concatenate([part, np.zeros(size - part.size, arr.dtype)])
+        shuffled = part.view(np.uint8).reshape(size, item).T.tobytes()
+        return zlib.compress(shuffled, HISTORIES_GZIP_LEVEL)
+
+    starts = range(0, arr.size, size)
+    if pool is None:
+        for start in starts:
+            ds.id.write_direct_chunk((start,), deflate(start))
+        return
+    window = 4 * max(1, threads)
+    ahead = deque()
+    try:
+        for start in starts:
+            ahead.append((start, pool.submit(deflate, start)))
+            if len(ahead) >= window:
+                done, fut = ahead.popleft()
+                ds.id.write_direct_chunk((done,), fut.result())
+        while ahead:
+            done, fut = ahead.popleft()
+            ds.id.write_direct_chunk((done,), fut.result())
+    finally:
+        for _, fut in ahead:        # after an error: drop the chunks not yet started
+            fut.cancel()
 
 
 def write_json(obj: dict, path: Path) -> None:

@@ -346,34 +346,17 @@ def _combine_ledger(parts: list, plan: list, bh: BlackHoles) -> dict:
             "per_forest_residual": resid[np.argsort(ids, kind="stable")]}
 
 
-#: rows formatted at a time when writing a catalogue (astropy's ECSV writer holds the text
-#: of every row it is given: ~1 kB per row)
+#: rows formatted at a time when writing a catalogue (the strings of a slice are held in
+#: memory: ~0.14 kB per value, ~28 MB for 10,000 rows of the 21-column merger catalogue)
 ECSV_ROWS = 10_000
 
 
 def _write_ecsv_rows(table, path: Path, meta: dict | None = None) -> None:
     """:func:`bhgrow.output.write_ecsv`, formatting at most :data:`ECSV_ROWS` rows at a time.
 
-    The first rows are written with the header; the rows of each further slice are
-    formatted by astropy's C CSV writer (the ECSV body is CSV; two to three times faster
-    than the ECSV writer's Python loop) and appended without their column-name line, so
-    the file is the same, byte for byte, as one written whole (tested).
+    The file is the same, byte for byte, as one written whole by astropy (tested).
     """
-    import io
-
-    if len(table) <= ECSV_ROWS:
-        write_ecsv(table, path, meta=meta)
-        return
-    if meta:
-        table.meta.update(meta)
-    write_ecsv(table[:ECSV_ROWS], path)
-    with open(path, "a", newline="") as fh:
-        for start in range(ECSV_ROWS, len(table), ECSV_ROWS):
-            buf = io.StringIO(newline="")
-            table[start:start + ECSV_ROWS].write(buf, format="ascii.csv", delimiter=",",
-                                                 fast_writer=True)
-            text = buf.getvalue()
-            fh.write(text[text.index("\n") + 1:])        # without the column-name line
+    write_ecsv(table, path, meta=meta, chunk_rows=ECSV_ROWS)
 
 
 def write_run(result: RunResult, config: Config, out, *, overwrite: bool = False,

@@ -29,9 +29,44 @@ def _plt():
     return plt
 
 
+def _subplots():
+    """A fresh figure and axes, made at the saving resolution :data:`DPI`.
+
+    At the saving dpi, the layout pass (``tight_layout``) and ``savefig`` draw with one
+    renderer, so every label is measured and mathtext-parsed once, not once per dpi (the
+    text caches are keyed by renderer and dpi); the PNG is the same size.
+    """
+    return _plt().subplots(figsize=_FIGSIZE, dpi=DPI)
+
+
+#: (renderer class, its mathtext parser) shared by the figures of this process
+_MATHTEXT: list = []
+
+
+def _shared_mathtext(fig) -> None:
+    """Let the figure's renderer use one mathtext parser shared by every figure.
+
+    Each Agg renderer has its own parser, whose cache of parsed strings dies with it, and
+    parsing (pyparsing) is a large part of drawing a figure; the log-axis tick labels
+    (``$\\mathdefault{10^{-4}}$``) and axis labels recur from figure to figure. A parse
+    depends only on the string, dpi, font and flags (the cache key), so sharing it changes
+    no pixel.
+    """
+    renderer = fig.canvas.get_renderer()
+    parser = getattr(renderer, "mathtext_parser", None)
+    if parser is None:
+        return
+    for kind, shared in _MATHTEXT:     # the first parser of this kind of renderer
+        if kind is type(renderer):
+            renderer.mathtext_parser = shared
+            return
+    _MATHTEXT.append((type(renderer), parser))
+
+
 def _save(fig, path) -> Path:
     path = Path(path)
     tmp = path.with_name(f".{path.stem}.tmp-{os.getpid()}.png")
+    _shared_mathtext(fig)
     fig.tight_layout()
     fig.savefig(tmp, dpi=DPI)
     os.replace(tmp, path)
@@ -44,8 +79,7 @@ def _save(fig, path) -> Path:
 def mass_histories(hist: dict, path, *, n: int = 24, seed_channels: dict | None = None,
                    title: str = "") -> Path:
     """Mass against redshift for up to ``n`` black holes (the most massive at the end)."""
-    plt = _plt()
-    fig, ax = plt.subplots(figsize=_FIGSIZE)
+    fig, ax = _subplots()
     ids = np.asarray(hist["bh_id"])
     if ids.size:
         uniq, start = np.unique(ids, return_index=True)
@@ -74,8 +108,7 @@ def mass_histories(hist: dict, path, *, n: int = 24, seed_channels: dict | None 
 
 def merger_rate_vs_z(z_lo, z_hi, rates: dict, path, *, ylabel: str, title: str = "") -> Path:
     """Step plot of rates per redshift bin, one line per label in ``rates``."""
-    plt = _plt()
-    fig, ax = plt.subplots(figsize=_FIGSIZE)
+    fig, ax = _subplots()
     edges = np.r_[np.asarray(z_lo), np.asarray(z_hi)[-1:]]
     lowest = np.inf
     for k, (label, (val, err)) in enumerate(rates.items()):
@@ -102,8 +135,7 @@ def merger_rate_vs_z(z_lo, z_hi, rates: dict, path, *, ylabel: str, title: str =
 def histogram(lo, hi, values: dict, path, *, xlabel: str, ylabel: str, logy: bool = True,
               title: str = "", vline: float | None = None, vlabel: str = "") -> Path:
     """Step histogram(s) from bin edges and per-bin values (one line per label)."""
-    plt = _plt()
-    fig, ax = plt.subplots(figsize=_FIGSIZE)
+    fig, ax = _subplots()
     edges = np.r_[np.asarray(lo), np.asarray(hi)[-1:]]
     for k, (label, val) in enumerate(values.items()):
         val = np.asarray(val, dtype=float)
@@ -123,8 +155,7 @@ def histogram(lo, hi, values: dict, path, *, xlabel: str, ylabel: str, logy: boo
 
 def mass_function(curves: dict, path, *, title: str = "") -> Path:
     """Black-hole mass function: ``curves[label] = (log_m_mid, phi, err)``."""
-    plt = _plt()
-    fig, ax = plt.subplots(figsize=_FIGSIZE)
+    fig, ax = _subplots()
     for k, (label, (x, phi, err)) in enumerate(curves.items()):
         phi = np.asarray(phi, dtype=float)
         ok = phi > 0
@@ -140,8 +171,7 @@ def mass_function(curves: dict, path, *, title: str = "") -> Path:
 
 def mbh_mhalo(x, median, p16, p84, path, *, title: str = "") -> Path:
     """Median and 16/84 percentiles of log M_BH against log M_halo."""
-    plt = _plt()
-    fig, ax = plt.subplots(figsize=_FIGSIZE)
+    fig, ax = _subplots()
     x, med = np.asarray(x, dtype=float), np.asarray(median, dtype=float)
     ok = np.isfinite(med)
     ax.fill_between(x[ok], np.asarray(p16)[ok], np.asarray(p84)[ok], alpha=0.3, color="C0",
@@ -156,8 +186,7 @@ def mbh_mhalo(x, median, p16, p84, path, *, title: str = "") -> Path:
 
 def gw_background(f_hz, h_c, path, *, title: str = "", others: dict | None = None) -> Path:
     """Characteristic strain of the nHz background with the 2023 PTA amplitude marked."""
-    plt = _plt()
-    fig, ax = plt.subplots(figsize=_FIGSIZE)
+    fig, ax = _subplots()
     ax.loglog(f_hz, h_c, color="C0", lw=1.8, label="this run")
     for k, (label, (f, h)) in enumerate((others or {}).items(), start=1):
         ax.loglog(f, h, color=f"C{k}", lw=1.5, label=label)

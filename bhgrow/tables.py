@@ -456,9 +456,10 @@ def _snapshot_tables(hz, values, wh, wanted, edges, *, fraction: bool):
                             "frac_err")}
     notes = []
     for zw, zs in zip(wanted, _nearest_snapshots(snaps, wanted)):  # a few redshifts
-        sel = hz == zs
-        n, s, err = _counts(values[sel], wh[sel], e)
-        total = float(wh[sel].sum())
+        sel = np.flatnonzero(hz == zs)     # gathered once: v and w are used again below
+        v, w = values[sel], wh[sel]
+        n, s, err = _counts(v, w, e)
+        total = float(w.sum())
         rows["z"].append(np.full(width.size, zw))
         rows["z_snapshot"].append(np.full(width.size, zs))
         rows["lo"].append(e[:-1])
@@ -468,11 +469,10 @@ def _snapshot_tables(hz, values, wh, wanted, edges, *, fraction: bool):
         rows["err"].append(err / width)
         rows["frac"].append(s / total if total > 0 else np.zeros(width.size))
         rows["frac_err"].append(err / total if total > 0 else np.zeros(width.size))
-        v = values[sel]
         off = ~((v >= e[0]) & (v <= e[-1]))
         n_out = int(off.sum())
-        w_out = float(wh[sel][off].sum())
-        notes.append(f"z = {zw:g} (snapshot z = {zs:.4g}): {int(sel.sum())} black holes, "
+        w_out = float(w[off].sum())
+        notes.append(f"z = {zw:g} (snapshot z = {zs:.4g}): {sel.size} black holes, "
                      f"{n_out} outside the bins ({w_out:.4g} Mpc^-3)")
     rows = {k: np.concatenate(v) if v else np.zeros(0) for k, v in rows.items()}
     if not fraction:

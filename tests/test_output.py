@@ -1,0 +1,274 @@
+"""bhgrow.output and the run-file writers: the fast ECSV writer gives astropy's bytes, the
+threaded history writer gives the datasets HDF5 writes itself, and the figures look the same
+with the shared mathtext parser.
+
+References are the libraries' own writers: astropy's ECSV writer
+(``Table.write(format="ascii.ecsv", delimiter=",")``) and h5py/HDF5 writing a dataset with
+``create_dataset(data=..., compression="gzip", shuffle=True)``.
+"""
+
+from __future__ import annotations
+
+import zlib
+
+import h5py
+import numpy as np
+import pytest
+from astropy.table import Column, MaskedColumn, Table
+
+from bhgrow import output, pipeline, plots
+from bhgrow.output import read_histories, write_ecsv, write_histories
+
+
+# ------------------------------------------------------------------------------------------
+# ECSV
+def astropy_bytes(table, path) -> bytes:
+    table.write(path, format="ascii.ecsv", delimiter=",", overwrite=True)
+    return path.read_bytes()
+
+
+def mixed_table(n: int = 3000, seed: int = 4) -> Table:
+    """Every column kind the fast writer formats itself, with awkward values."""
+    rng = np.random.default_rng(seed)
+    special = np.array([0.0, -0.0, np.nan, np.inf, -np.inf, 1e16, 9999999999999998.0, 1e-4,
+                        np.nextafter(1e-4, 0), 1e-5, 5e-324, 1.7976931348623157e308, 123.0,
+                        0.1, 1 / 3, 2.0 ** 53, 1e22, -2.5e-300])
+    bits = rng.integers(0, 2 ** 64, n, dtype=np.uint64, endpoint=False).view(np.float64)
+    bits[: special.size] = special
+    t = Table()
+    t["id"] = np.arange(n, dtype=np.int64) * 7919 - 10 ** 12
+    t["random_bits"] = bits
+    t["random_bits"].unit = "solMass"
+    t["random_bits"].description = "any float64 bit pattern"
+    t["lognormal"] = rng.lognormal(0, 20, n)
+    t["lognormal"].unit = "Mpc-3"
+    # few distinct values (formatted once per bit pattern): 0.0 and -0.0, NaN, a constant
+    t["few"] = rng.choice(np.array([0.0, -0.0, np.nan, 1e-6, 13.78, -1.5]), n)
+    t["const"] = np.full(n, 1e-06)
+    t["f32"] = rng.normal(0, 1e3, n).astype(np.float32)
+    t["f16"] = rng.normal(0, 10, n).astype(np.float16)
+    t["u8"] = rng.integers(0, 255, n).astype(np.uint8)
+    t["u64"] = rng.integers(0, 2 ** 63, n, dtype=np.uint64) * 2
+    t["flag"] = rng.random(n) < 0.5
+    t["name"] = rng.choice(np.array(["light", "heavy", "Ω-seed", "über", "", "a b", "x\ty"]),
+                           n)
+    t["name"].description = "unicode, empty and inner blanks"
+    t["f_fmt"] = rng.random(n)
+    t["f_fmt"].info.format = ".3f"          # written in the header; ECSV ignores it for rows
+    t.meta.update({"made_by": "test", "seed": 1, "list": [1.5, 2.5]})
+    return t
+
+
+def test_fast_ecsv_is_astropys_bytes(tmp_path):
+    t = mixed_table()
+    ref = astropy_bytes(t, tmp_path / "ref.ecsv")
+    assert output._ecsv_fast_columns(t) is not None        # the fast path is taken
+    for rows in (None, 1, 7, 2048, 2999, 3000, 10 ** 6):
+        write_ecsv(t, tmp_path / "fast.ecsv", chunk_rows=rows)
+        assert (tmp_path / "fast.ecsv").read_bytes() == ref, rows
+    back = Table.read(tmp_path / "fast.ecsv")
+    assert back.colnames == t.colnames and str(back["lognormal"].unit) == "1 / Mpc3"
+    for name in t.colnames:
+        if name != "name":          # (astropy reads an empty string back as masked)
+            np.testing.assert_array_equal(np.asarray(back[name]), np.asarray(t[name]), name)
+
+
+def test_fast_ecsv_empty_table_and_meta_argument(tmp_path):
+    t = mixed_table()[:0]
+    ref = astropy_bytes(t, tmp_path / "ref.ecsv")
+    write_ecsv(t, tmp_path / "fast.ecsv")
+    assert (tmp_path / "fast.ecsv").read_bytes() == ref
+    t2 = mixed_table(50)
+    write_ecsv(t2, tmp_path / "fast.ecsv", meta={"extra": "yes"}, chunk_rows=3)
+    assert t2.meta["extra"] == "yes"
+    assert (tmp_path / "fast.ecsv").read_bytes() == astropy_bytes(t2, tmp_path / "ref.ecsv")
+
+
+@pytest.mark.parametrize("make", [
+    lambda t: t.add_column(MaskedColumn([1.0, 2.0, 3.0], mask=[False, True, False]),
+                           name="masked"),
+    lambda t: t.add_column(Column(np.arange(6.0).reshape(3, 2)), name="vector"),
+    lambda t: t.add_column(Column(np.array([{"a": 1}, None, [1, 2]], dtype=object)),
+                           name="objects"),
+    lambda t: t.add_column(Column(np.array([b"ab", b"c", b""])), name="bytes"),
+    lambda t: t.add_column(Column(["a,b", "plain", "q\"uote"]), name="needs_quotes"),
+    lambda t: t.add_column(Column(["line\nbreak", "x", "y"]), name="newline"),
+    lambda t: t.add_column(Column([" lead", "trail\t", "ok"]), name="blanks"),
+], ids=["masked", "multidim", "object", "bytes", "quotes", "newline", "blanks"])
+def test_ecsv_columns_astropy_writes_itself(tmp_path, make):
+    """Columns the fast path does not format: astropy writes the table (same bytes)."""
+    t = Table({"x": [1.5, -0.0, np.nan], "k": np.array([1, 2, 3])})
+    make(t)
+    assert output._ecsv_fast_columns(t) is None
+    write_ecsv(t, tmp_path / "fast.ecsv")
+    assert (tmp_path / "fast.ecsv").read_bytes() == astropy_bytes(t, tmp_path / "ref.ecsv")
+
+
+def test_ecsv_table_without_columns(tmp_path):
+    t = Table(meta={"note": "nothing here"})
+    assert output._ecsv_fast_columns(t) is None
+    write_ecsv(t, tmp_path / "fast.ecsv")
+    assert (tmp_path / "fast.ecsv").read_bytes() == astropy_bytes(t, tmp_path / "ref.ecsv")
+
+
+def test_ecsv_single_empty_string_column(tmp_path):
+    t = Table({"s": ["", "a", ""]})        # csv writes a lone empty field as ""
+    write_ecsv(t, tmp_path / "fast.ecsv")
+    assert (tmp_path / "fast.ecsv").read_bytes() == astropy_bytes(t, tmp_path / "ref.ecsv")
+
+
+def test_ecsv_legacy_numpy_print_mode(tmp_path):
+    """numpy's 1.13 print mode changes str() of float scalars; the file still follows it."""
+    t = Table({"x": [1 / 3, 1e16, 0.1, 2.5e-7], "n": [1, 2, 3, 4]})
+    with np.printoptions(legacy="1.13"):
+        ref = astropy_bytes(t, tmp_path / "ref.ecsv")
+        write_ecsv(t, tmp_path / "fast.ecsv")
+    assert (tmp_path / "fast.ecsv").read_bytes() == ref
+    assert b"\n0.333333333333,1\n" in ref     # the legacy text, not repr's 16 digits
+
+
+def test_catalogue_slices_are_astropys_bytes(tmp_path, monkeypatch):
+    """write_run's catalogue writer (a slice of rows at a time) against astropy whole."""
+    monkeypatch.setattr(pipeline, "ECSV_ROWS", 11)
+    t = mixed_table(100)
+    pipeline._write_ecsv_rows(t, tmp_path / "rows.ecsv", meta={"seed": 3})
+    assert t.meta["seed"] == 3
+    assert (tmp_path / "rows.ecsv").read_bytes() == astropy_bytes(t, tmp_path / "ref.ecsv")
+
+
+# ------------------------------------------------------------------------------------------
+# histories
+def history_columns(n_bh: int = 700, seed: int = 2) -> dict:
+    rng = np.random.default_rng(seed)
+    rows = rng.integers(1, 40, n_bh)
+    ids = np.repeat(np.arange(10, 10 + n_bh, dtype=np.int64) * 3, rows)
+    n = ids.size
+    return {"bh_id": ids, "t_gyr": np.tile(np.linspace(0.2, 13.8, 40), n_bh)[:n],
+            "z": rng.choice(np.linspace(0, 20, 40), n),
+            "mass_msun": rng.lognormal(10, 3, n),
+            "mdot_msun_yr": np.where(rng.random(n) < 0.3, 0.0, rng.lognormal(-3, 2, n)),
+            "eddington_ratio": rng.random(n).astype(np.float32),
+            "host_gas_msun": rng.integers(0, 2 ** 62, n).view(np.float64),  # incompressible
+            "flag": rng.random(n) < 0.1}                  # bool: written by HDF5 itself
+
+
+def write_reference(cols: dict, path) -> None:
+    """What write_histories wrote before its chunks were compressed in threads."""
+    units = {"t_gyr": "Gyr", "mass_msun": "Msun", "mdot_msun_yr": "Msun/yr",
+             "host_gas_msun": "Msun"}
+    with h5py.File(path, "w") as h5:
+        h5.attrs["format"] = "bhgrow-histories"
+        h5.attrs["schema_version"] = 1
+        for name, arr in cols.items():
+            ds = h5.create_dataset(name, data=arr, compression="gzip", shuffle=True)
+            ds.attrs["unit"] = units.get(name, "")
+        uniq, start = np.unique(cols["bh_id"], return_index=True)
+        g = h5.create_group("index")
+        g.create_dataset("bh_id", data=uniq)
+        g.create_dataset("offset", data=np.r_[start, cols["bh_id"].size].astype(np.int64))
+
+
+def items(h5) -> dict:
+    out = {}
+    h5.visititems(lambda name, obj: out.__setitem__(name, obj))
+    return out
+
+
+def assert_same_histories(a_path, b_path, *, raw_chunks: bool) -> None:
+    with h5py.File(a_path) as a, h5py.File(b_path) as b:
+        assert {k: a.attrs[k] for k in a.attrs} == {k: b.attrs[k] for k in b.attrs}
+        ia, ib = items(a), items(b)
+        assert list(ia) == list(ib)
+        for name, x in ia.items():
+            y = ib[name]
+            assert type(x) is type(y), name
+            if isinstance(x, h5py.Group):
+                continue
+            assert (x.dtype, x.shape, x.chunks) == (y.dtype, y.shape, y.chunks), name
+            assert x.id.get_create_plist() == y.id.get_create_plist(), name   # filters, fill
+            assert dict(x.attrs) == dict(y.attrs), name
+            assert x[()].tobytes() == y[()].tobytes(), name
+            if raw_chunks and x.chunks:
+                for i in range(x.id.get_num_chunks()):
+                    offset = x.id.get_chunk_info(i).chunk_offset
+                    assert x.id.read_direct_chunk(offset) == \
+                        y.id.read_direct_chunk(offset), (name, i)
+
+
+def hdf5_deflate_is_pythons(tmp_path) -> bool:
+    """Whether HDF5's deflate filter gives the bytes of Python's zlib (same library)."""
+    data = np.arange(5000, dtype=np.float64) ** 1.5
+    with h5py.File(tmp_path / "probe.h5", "w") as h5:
+        ds = h5.create_dataset("x", data=data, chunks=(5000,), compression="gzip",
+                               shuffle=True)
+        raw = ds.id.read_direct_chunk((0,))[1]
+    return raw == zlib.compress(data.view(np.uint8).reshape(-1, 8).T.tobytes(), 4)
+
+
+@pytest.mark.parametrize("threads", [1, 2, 5])   # 16 chunks a column; 5: window never full
+def test_histories_same_datasets_as_hdf5_writes(tmp_path, threads):
+    cols = history_columns()
+    write_reference(cols, tmp_path / "ref.h5")
+    with h5py.File(tmp_path / "ref.h5") as h5:      # a partial last chunk (padded)
+        assert h5["mass_msun"].shape[0] % h5["mass_msun"].chunks[0] != 0
+    write_histories(cols, tmp_path / "new.h5", threads=threads)
+    assert_same_histories(tmp_path / "ref.h5", tmp_path / "new.h5",
+                          raw_chunks=hdf5_deflate_is_pythons(tmp_path))
+    back = read_histories(tmp_path / "new.h5")
+    for k, v in cols.items():
+        np.testing.assert_array_equal(back[k], v, k)
+
+
+def test_histories_default_threads_and_empty(tmp_path):
+    cols = history_columns(30)
+    write_reference(cols, tmp_path / "ref.h5")
+    write_histories(cols, tmp_path / "new.h5")
+    assert_same_histories(tmp_path / "ref.h5", tmp_path / "new.h5", raw_chunks=False)
+    empty = {k: v[:0] for k, v in cols.items()}
+    write_reference(empty, tmp_path / "ref0.h5")
+    write_histories(empty, tmp_path / "new0.h5")
+    assert_same_histories(tmp_path / "ref0.h5", tmp_path / "new0.h5", raw_chunks=False)
+
+
+def test_histories_compression_error_leaves_no_thread_running(tmp_path, monkeypatch):
+    import threading
+
+    def broken(data, level):
+        raise RuntimeError("disk on fire")
+
+    monkeypatch.setattr(zlib, "compress", broken)
+    before = threading.active_count()
+    with pytest.raises(RuntimeError, match="disk on fire"):
+        write_histories(history_columns(50), tmp_path / "h.h5", threads=2)
+    assert threading.active_count() == before
+
+
+# ------------------------------------------------------------------------------------------
+# figures
+def png_pixels(path) -> np.ndarray:
+    from PIL import Image
+
+    with Image.open(path) as im:
+        return np.asarray(im.convert("RGBA"))
+
+
+def draw_histogram(path):
+    lo = np.arange(-3, 6, 0.5)
+    return plots.histogram(lo, lo + 0.5, {"a": np.exp(-lo ** 2) * 1e-3,
+                                          "b": np.exp(-lo) * 1e-5},
+                           path, xlabel=r"log$_{10}$ M$_c$ [M$_\odot$]",
+                           ylabel=r"mergers [Mpc$^{-3}$ dex$^{-1}$]", vline=1.0,
+                           vlabel="threshold", title="test")
+
+
+def test_shared_mathtext_parser_changes_no_pixel(tmp_path, monkeypatch):
+    """Figures drawn with the parser shared between figures (cache warm from an earlier
+    figure) are pixel for pixel those drawn with each renderer's own parser."""
+    draw_histogram(tmp_path / "warm.png")
+    draw_histogram(tmp_path / "shared.png")
+    monkeypatch.setattr(plots, "_shared_mathtext", lambda fig: None)
+    draw_histogram(tmp_path / "own.png")
+    shared, own = png_pixels(tmp_path / "shared.png"), png_pixels(tmp_path / "own.png")
+    assert shared.shape == own.shape == (round(4.4 * plots.DPI), round(6.4 * plots.DPI), 4)
+    np.testing.assert_array_equal(shared, own)
+    assert not list(tmp_path.glob(".*.tmp-*"))
