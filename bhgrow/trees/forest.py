@@ -25,22 +25,31 @@ import numpy as np
 
 from ..errors import BhgrowInputError
 from .validate import (OPTIONAL_COLUMNS, REQUIRED_COLUMNS, _coerce_float, _coerce_int,
-                       validate)
+                       id_table, rows_of_ids, validate)
 
 
-def _row_order(snap, forest_id, node_id) -> np.ndarray:
+def _row_order(snap, forest_id, node_id) -> tuple:
     """Row order by (snapshot, forest, node id): ``lexsort((node_id, forest_id, snap))``.
 
     Files are usually written in an order that is already by (forest, node id) within
     each snapshot (bhgrow's own, grouped by forest); then a stable sort on the snapshot
     alone gives the same order several times faster. Checked, else the full sort.
+
+    Returns
+    -------
+    order : ndarray
+    in_order : tuple of ndarray or None
+        ``(snap, forest_id, node_id)`` already taken in that order (the check needed them),
+        or None after the full sort.
     """
     small = snap.size and -2**15 <= snap.min() and snap.max() < 2**15
     o = np.argsort(snap.astype(np.int16) if small else snap, kind="stable")
     s, f, i = snap[o], forest_id[o], node_id[o]
     next_f = (f[1:] > f[:-1]) | ((f[1:] == f[:-1]) & (i[1:] > i[:-1]))
     ok = np.all((s[1:] > s[:-1]) | ((s[1:] == s[:-1]) & next_f))
-    return o if ok else np.lexsort((node_id, forest_id, snap))
+    if ok:
+        return o, (s, f, i)
+    return np.lexsort((node_id, forest_id, snap)), None
 
 
 @dataclass(frozen=True)
@@ -145,19 +154,20 @@ class Forest:
                 source=source, rule="unknown_columns", rows=unknown)
         if check:
             validate(columns, snap_nums, snap_z, source=source)
-        node_id = np.asarray(columns["node_id"]).astype(np.int64)
-        desc_id = np.asarray(columns["desc_id"]).astype(np.int64)
-        forest_id = np.asarray(columns["forest_id"]).astype(np.int64)
-        snap = np.asarray(columns["snap"]).astype(np.int64)
-        mass = np.asarray(columns["mass_msun"]).astype(np.float64)
-        extra = {k: np.asarray(v).astype(np.float64) for k, v in columns.items()
+        # no copies here: every column is taken in row order below (new arrays)
+        node_id = np.asarray(columns["node_id"]).astype(np.int64, copy=False)
+        desc_id = np.asarray(columns["desc_id"]).astype(np.int64, copy=False)
+        forest_id = np.asarray(columns["forest_id"]).astype(np.int64, copy=False)
+        snap = np.asarray(columns["snap"]).astype(np.int64, copy=False)
+        mass = np.asarray(columns["mass_msun"]).astype(np.float64, copy=False)
+        extra = {k: np.asarray(v).astype(np.float64, copy=False) for k, v in columns.items()
                  if k in OPTIONAL_COLUMNS and k != "weight_mpc3"}
 
         s_order = np.argsort(np.asarray(snap_nums).astype(np.int64), kind="stable")
         snaps = SnapshotTable(np.asarray(snap_nums).astype(np.int64)[s_order],
                               np.asarray(snap_z).astype(np.float64)[s_order])
-        order = _row_order(snap, forest_id, node_id)
-        fids = np.unique(forest_id)
+        order, in_order = _row_order(snap, forest_id, node_id)
+        fids = np.unique(forest_id[_run_starts(forest_id)])   # rows come in runs of a forest
         weights = None
         if "weight_mpc3" in columns:
             w = np.asarray(columns["weight_mpc3"], dtype=np.float64)
@@ -174,8 +184,10 @@ class Forest:
                 raise BhgrowInputError(f"{source}: box size must be finite and > 0 Mpc; got "
                                        f"{box_mpc}", source=source, rule="bad_box")
             box_mpc = box
-        f = cls(node_id=node_id[order], desc_id=desc_id[order], forest_id=forest_id[order],
-                snap=snap[order], mass_msun=mass[order], snapshots=snaps,
+        s_o, f_o, i_o = in_order if in_order is not None else (
+            snap[order], forest_id[order], node_id[order])
+        f = cls(node_id=i_o, desc_id=desc_id[order], forest_id=f_o,
+                snap=s_o, mass_msun=mass[order], snapshots=snaps,
                 extra={k: v[order] for k, v in extra.items()}, forest_ids=fids,
                 forest_weight=weights, box_mpc=box_mpc, meta=dict(meta or {}))
         f._index()
@@ -184,38 +196,50 @@ class Forest:
     def _index(self) -> None:
         """Build descendant rows, CSR progenitor lists, main progenitors, snapshot slices."""
         n = self.node_id.size
-        id_order = np.argsort(self.node_id, kind="stable")
-        # binary search on the sorted ids themselves (searchsorted's ``sorter`` reads them
-        # out of order, ~2x slower)
-        pos = np.searchsorted(self.node_id[id_order], self.desc_id)
-        pos = np.minimum(pos, n - 1)
-        self.desc_index = np.where(self.desc_id >= 0, id_order[pos], -1).astype(np.int64)
+        self.desc_index = _descendant_rows(self.node_id, self.desc_id)
 
-        has = self.desc_index >= 0
-        rows = np.flatnonzero(has)
-        # progenitors grouped by descendant, most massive first, ties -> lowest node_id
-        self.prog_index = rows[self._progenitor_order(rows)]
+        rows = np.flatnonzero(self.desc_index >= 0)
         counts = np.bincount(self.desc_index[rows], minlength=n)
         self.prog_offsets = np.zeros(n + 1, dtype=np.int64)
         np.cumsum(counts, out=self.prog_offsets[1:])
+        # progenitors grouped by descendant, most massive first, ties -> lowest node_id
+        self.prog_index = rows[self._progenitor_order(rows, counts)]
         self.main_prog = np.full(n, -1, dtype=np.int64)
         with_prog = counts > 0
         self.main_prog[with_prog] = self.prog_index[self.prog_offsets[:-1][with_prog]]
 
-        snap_pos = np.searchsorted(self.snapshots.snap, self.snap)
+        snap_pos = _search_runs(self.snapshots.snap, self.snap)
         self.snap_offsets = np.searchsorted(snap_pos, np.arange(len(self.snapshots) + 1))
-        self.forest_index = np.searchsorted(self.forest_ids, self.forest_id)
+        self.forest_index = _search_runs(self.forest_ids, self.forest_id)
 
-    def _progenitor_order(self, rows: np.ndarray) -> np.ndarray:
+    def _progenitor_order(self, rows: np.ndarray, counts: np.ndarray) -> np.ndarray:
         """Order of ``rows`` (nodes with a descendant) by descendant, then mass (largest
-        first), then node id: ``lexsort((node_id, -mass, desc_index))``, with the two minor
-        keys sorted only where a descendant has several progenitors (a few per cent)."""
+        first), then node id: ``lexsort((node_id, -mass, desc_index))``.
+
+        ``counts`` is the number of progenitors of every row. Rows are first put in order
+        of descendant (a stable sort, so each group is in row order); the two minor keys
+        then matter only in groups of several progenitors (a few per cent): a pair is
+        compared directly (most groups of several are pairs), larger groups are sorted.
+        """
         d = self.desc_index[rows]
         o = np.argsort(d, kind="stable")
-        ds = d[o]
-        same = ds[1:] == ds[:-1]
-        multi = np.flatnonzero(np.r_[same, False] | np.r_[False, same])
-        if multi.size:
+        # the group of descendant j fills o[prog_offsets[j]:prog_offsets[j + 1]]
+        start = self.prog_offsets[:-1]
+        first = start[counts == 2]
+        if first.size:
+            i, j = o[first], o[first + 1]          # i comes first in row order
+            ri, rj = rows[i], rows[j]
+            # j goes first if lexsort would put it first: its key -mass is smaller (sort
+            # order: NaN last, NaNs equal), or equal and its node id smaller
+            mi, mj = -self.mass_msun[ri], -self.mass_msun[rj]
+            nan_i, nan_j = np.isnan(mi), np.isnan(mj)
+            less = (mj < mi) | (nan_i & ~nan_j)
+            equal = (mj == mi) | (nan_i & nan_j)
+            swap = less | (equal & (self.node_id[rj] < self.node_id[ri]))
+            o[first[swap]], o[first[swap] + 1] = j[swap], i[swap]
+        big = counts > 2
+        if big.any():
+            multi = np.repeat(big, counts)           # positions of o in groups of 3 or more
             sub = o[multi]
             r = rows[sub]
             o[multi] = sub[np.lexsort((self.node_id[r], -self.mass_msun[r], d[sub]))]
@@ -375,6 +399,46 @@ class Forest:
         ``1 / box_mpc**3``. Raises if the forest has neither.
         """
         return volume_weights(self.forest_weight, self.box_mpc, self.n_forests)
+
+
+def _run_starts(values: np.ndarray) -> np.ndarray:
+    """Mask of the rows that start a run of equal values (the first row always)."""
+    start = np.ones(values.size, dtype=bool)
+    np.not_equal(values[1:], values[:-1], out=start[1:])
+    return start
+
+
+def _search_runs(table: np.ndarray, values: np.ndarray) -> np.ndarray:
+    """``np.searchsorted(table, values)``, searching once per run of equal values.
+
+    Rows sorted by snapshot, then forest, hold long runs of one snapshot and of one forest:
+    one search per run, spread over its rows, is several times faster than one per row.
+    """
+    start = np.flatnonzero(_run_starts(values))
+    pos = np.searchsorted(table, values[start])
+    return np.repeat(pos, np.diff(start, append=values.size))
+
+
+def _descendant_rows(node_id: np.ndarray, desc_id: np.ndarray) -> np.ndarray:
+    """Row of each node's descendant (-1 where ``desc_id`` < 0), as int64.
+
+    Dense unique ids (the usual case) are looked up in a table (:func:`id_table`); sparse
+    or repeated ids, or a descendant id that names no node, take a sort of the ids and a
+    binary search (the result on such input is whatever that search gives, as always).
+    """
+    has = desc_id >= 0
+    table = id_table(node_id)
+    if table is not None:
+        rows = rows_of_ids(table, desc_id)
+        if not np.any(has & (rows < 0)):
+            return np.where(has, rows, np.int64(-1))
+    n = node_id.size
+    id_order = np.argsort(node_id, kind="stable")
+    # binary search on the sorted ids themselves (searchsorted's ``sorter`` reads them
+    # out of order, ~2x slower)
+    pos = np.searchsorted(node_id[id_order], desc_id)
+    pos = np.minimum(pos, n - 1)
+    return np.where(has, id_order[pos], -1).astype(np.int64)
 
 
 def volume_weights(forest_weight, box_mpc, n_forests: int) -> np.ndarray:

@@ -612,7 +612,11 @@ class HDF5Forests:
         Forests are read in file order in chunks of at most ``max_nodes`` nodes (a larger
         forest alone) and checked as they are read; repeated node ids and descendants in
         other chunks are then found by streaming the ``node_id`` column
-        (:class:`~bhgrow.trees.validate.ChunkedCheck`). Memory: one chunk.
+        (:class:`~bhgrow.trees.validate.ChunkedCheck`). Memory: one chunk. While the node
+        ids seen so far span at most ``8 * max(max_nodes, READ_BLOCK_ROWS)`` values, one
+        flag byte per value (no more bytes than that many ids) records them during the
+        chunk pass: ids found unique that way need no second pass over ``node_id``; a file
+        of at most ``max(max_nodes, READ_BLOCK_ROWS)`` nodes keeps its ids from the pass.
 
         Raises
         ------
@@ -623,14 +627,27 @@ class HDF5Forests:
             raise BhgrowInputError(f"`max_nodes` of HDF5Forests.check must be an integer >= 1;"
                                    f" got {max_nodes!r}")
         chk = ChunkedCheck(self._snap_raw, self._z_raw)
+        # ids held at once: a chunk, or a read block if more
+        budget = max(int(max_nodes), int(READ_BLOCK_ROWS))
+        seen = _SeenIds(8 * budget)
+        # a file of at most `budget` nodes: its ids are kept from the pass, not read again
+        kept = [] if self.n_nodes <= budget else None
         for ids in self.chunk_ids(max_nodes):
             cols, rows = self.read_columns(ids, rows=True)
             chk.add_chunk(cols, rows)
+            seen.add(cols["node_id"])
+            if kept is not None:
+                kept.append(cols["node_id"])
             del cols, rows
         if chk.id_columns_ok():
-            # ids held at once: a chunk, or a read block if more
-            budget = max(int(max_nodes), int(READ_BLOCK_ROWS))
-            chk.set_duplicates(self._duplicate_node_ids(budget))
+            if seen.all_unique() and not chk.repeats_within_chunks():
+                chk.set_duplicates(np.zeros(0, np.int64))
+            elif kept is not None:
+                chk.set_duplicates(_repeated_ids(
+                    np.concatenate(kept).astype(np.int64, copy=False)))
+            else:   # repeated ids, or too spread out to flag: found exactly by streaming
+                chk.set_duplicates(self._duplicate_node_ids(budget))
+            kept = seen = None          # freed before the look-ups
             outside = chk.outside_descendants()
             if outside.size:
                 chk.resolve(*self._lookup_nodes(outside))
@@ -656,11 +673,7 @@ class HDF5Forests:
         Ids are split into value ranges of at most ``budget`` ids (from a histogram of the
         column), and each range is collected by one streaming pass and sorted.
         """
-        def dups(ids):
-            ids.sort()
-            rep = ids[1:][ids[1:] == ids[:-1]]
-            return np.unique(rep)
-
+        dups = _repeated_ids
         if self.n_nodes <= budget:
             return dups(np.concatenate([ids for ids, _ in self._node_blocks()]))
         lo, hi = None, None
@@ -697,6 +710,88 @@ class HDF5Forests:
             got_ids.append(ids[hit])
             got_snap.append(snap[hit])
         return np.concatenate(got_ids), np.concatenate(got_snap)
+
+
+def _repeated_ids(ids: np.ndarray) -> np.ndarray:
+    """The values occurring more than once in ``ids`` (sorted, unique); sorts ``ids``."""
+    ids.sort()
+    rep = ids[1:][ids[1:] == ids[:-1]]
+    return np.unique(rep)
+
+
+class _SeenIds:
+    """The node ids held by the chunks of a check so far, one flag byte per id value.
+
+    The flags cover the range of the ids added (grown as chunks bring lower or higher
+    ids) while it spans at most ``max_bytes`` values; beyond that, or for ids that are not
+    integers, the record is dropped and :meth:`all_unique` is False. An id added twice in
+    different calls is a repeat (repeats within one call are not seen here).
+
+    Parameters
+    ----------
+    max_bytes : int
+        Most flags held.
+    """
+
+    def __init__(self, max_bytes: int):
+        self.max_bytes = int(max_bytes)
+        self.lo = 0
+        self.flags: np.ndarray | None = None
+        self.dropped = False
+        self.repeated = False
+
+    def all_unique(self) -> bool:
+        """True if every id was recorded and none came in two calls."""
+        return not (self.dropped or self.repeated)
+
+    def add(self, values) -> None:
+        """Record the ids of one chunk (as stored in the file)."""
+        if self.dropped or self.repeated:
+            return
+        arr = np.asarray(values)
+        if arr.size == 0:
+            return
+        if arr.dtype.kind not in "iu" or (arr.dtype.kind == "u"
+                                           and arr.max() > np.iinfo(np.int64).max):
+            self._drop()
+            return
+        ids = arr.astype(np.int64, copy=False)
+        if not self._cover(int(ids.min()), int(ids.max())):
+            self._drop()
+            return
+        k = ids - self.lo
+        if self.flags[k].any():
+            self.repeated = True       # the exact list comes from the streaming search
+            self.flags = None
+            return
+        self.flags[k] = True
+
+    def _drop(self) -> None:
+        self.dropped, self.flags = True, None
+
+    def _cover(self, lo: int, hi: int) -> bool:
+        """Grow the flags to cover ids ``lo..hi``; False if that needs too many."""
+        if self.flags is None:
+            if hi - lo + 1 > self.max_bytes:
+                return False
+            self.lo, self.flags = lo, np.zeros(hi - lo + 1, dtype=bool)
+            return True
+        cur_lo, cur_hi = self.lo, self.lo + self.flags.size - 1
+        if lo >= cur_lo and hi <= cur_hi:
+            return True
+        new_lo, new_hi = min(lo, cur_lo), max(hi, cur_hi)
+        # room to spare on the side that grew (ids often rise chunk by chunk): few copies
+        room = self.flags.size
+        lo2 = max(new_lo - room, -2**63) if lo < cur_lo else new_lo
+        hi2 = min(new_hi + room, 2**63 - 1) if hi > cur_hi else new_hi
+        if hi2 - lo2 + 1 > self.max_bytes:
+            lo2, hi2 = new_lo, new_hi
+            if hi2 - lo2 + 1 > self.max_bytes:
+                return False
+        flags = np.zeros(hi2 - lo2 + 1, dtype=bool)
+        flags[cur_lo - lo2:cur_lo - lo2 + self.flags.size] = self.flags
+        self.lo, self.flags = lo2, flags
+        return True
 
 
 def open_forests(path, *, check: bool = True, max_nodes: int = 2_000_000,

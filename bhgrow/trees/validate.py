@@ -254,13 +254,16 @@ def find_problems(columns: dict, snap_nums, snap_z, *, row_numbers=None,
     if neg.any():
         problems.append(Problem("negative_ids", "node ids must be >= 0; negative ids",
                                 _ids(node, neg), int(neg.sum())))
-    order = np.argsort(node, kind="stable")
-    sorted_ids = node[order]
-    dup = np.r_[False, sorted_ids[1:] == sorted_ids[:-1]]
-    if dup.any():
-        dup_ids = np.unique(sorted_ids[dup])
-        problems.append(Problem("duplicate_ids", "node ids occur more than once",
-                                _ids(dup_ids, slice(None)), dup_ids.size))
+    # ids dense and unique (the usual case): rows by a look-up table; else sort and search
+    table = id_table(node)
+    if table is None:
+        order = np.argsort(node, kind="stable")
+        sorted_ids = node[order]
+        dup = np.r_[False, sorted_ids[1:] == sorted_ids[:-1]]
+        if dup.any():
+            dup_ids = np.unique(sorted_ids[dup])
+            problems.append(Problem("duplicate_ids", "node ids occur more than once",
+                                    _ids(dup_ids, slice(None)), dup_ids.size))
 
     # --- snapshots -------------------------------------------------------------------------
     snaps_known = np.asarray(snap_nums).astype(np.int64, copy=False) if np.asarray(
@@ -274,9 +277,14 @@ def find_problems(columns: dict, snap_nums, snap_z, *, row_numbers=None,
 
     # --- descendants -----------------------------------------------------------------------
     has_desc = desc != -1
-    pos = np.searchsorted(sorted_ids, desc)
-    pos_c = np.minimum(pos, sorted_ids.size - 1)
-    found = has_desc & (sorted_ids[pos_c] == desc)
+    if table is None:
+        pos = np.searchsorted(sorted_ids, desc)
+        pos_c = np.minimum(pos, sorted_ids.size - 1)
+        found = has_desc & (sorted_ids[pos_c] == desc)
+        desc_idx = np.where(found, order[pos_c], -1)
+    else:
+        desc_idx = np.where(has_desc, rows_of_ids(table, desc), -1)
+        found = desc_idx >= 0
     missing_desc = has_desc & ~found
     if links is not None:
         links.update(node_id=node[missing_desc], desc_id=desc[missing_desc],
@@ -285,19 +293,20 @@ def find_problems(columns: dict, snap_nums, snap_z, *, row_numbers=None,
         problems.append(Problem(
             "missing_descendants", "descendant ids name no node in the file; nodes",
             _ids(node, missing_desc), int(missing_desc.sum())))
-    desc_idx = np.where(found, order[pos_c], -1)
 
     linked = desc_idx >= 0
     self_link = linked & (desc == node)
+    earlier = linked & (snap[np.maximum(desc_idx, 0)] <= snap)   # descendant not later
     if not unknown.any():
-        not_later = linked & (snap[np.maximum(desc_idx, 0)] <= snap)
-        not_later &= ~self_link
+        not_later = earlier & ~self_link
         if not_later.any():
             problems.append(Problem(
                 "descendant_not_later",
                 "descendant is not at a later snapshot than its progenitor; nodes",
                 _ids(node, not_later), int(not_later.sum())))
-    cyc = _nodes_on_cycles(desc_idx) | self_link
+    # every link going to a later snapshot: chains end, no cycle (nor self link) is possible
+    cyc = (_nodes_on_cycles(desc_idx) | self_link) if earlier.any() else \
+        np.zeros(node.size, dtype=bool)
     if cyc.any():
         problems.append(Problem("cycles",
                                 "following descendants loops back and never reaches a root; nodes",
@@ -333,12 +342,65 @@ def _nodes_on_cycles(desc_idx: np.ndarray) -> np.ndarray:
     n = desc_idx.size
     nxt = desc_idx.copy()
     rounds = max(1, int(np.ceil(np.log2(max(n, 2)))) + 1)
+    # only the rows still alive are updated: a chain that has ended stays at -1, so the
+    # rows shrink every round (short trees: most end in the first few rounds)
+    alive = np.flatnonzero(nxt >= 0)
     for _ in range(rounds):
-        alive = nxt >= 0
-        if not alive.any():
+        if not alive.size:
             break
         nxt[alive] = nxt[nxt[alive]]
+        alive = alive[nxt[alive] >= 0]
     return nxt >= 0
+
+
+#: an id -> row look-up table is used when the ids span at most this many times as many
+#: values as there are rows (plus :data:`ID_TABLE_MIN`), so the table stays of the order of
+#: the id column itself; sparser ids are sorted and searched
+ID_TABLE_SPAN = 8
+ID_TABLE_MIN = 1 << 16
+
+
+def id_table(ids: np.ndarray):
+    """A look-up table from ids to rows, or None if the ids repeat or are too sparse.
+
+    Parameters
+    ----------
+    ids : ndarray of int64
+        Node ids, one per row.
+
+    Returns
+    -------
+    tuple (int, ndarray) or None
+        ``(lo, table)`` with ``table[i - lo]`` the row of id ``i`` (-1 if no row has it),
+        for :func:`rows_of_ids`; None if ``ids`` is empty, holds an id twice, or spans more
+        than ``ID_TABLE_SPAN * ids.size + ID_TABLE_MIN`` values.
+    """
+    n = ids.size
+    if n == 0:
+        return None
+    lo, hi = int(ids.min()), int(ids.max())
+    if hi - lo + 1 > ID_TABLE_SPAN * n + ID_TABLE_MIN:   # Python ints: no overflow
+        return None
+    # int32 rows where they fit: a smaller table to fill and to read from
+    dtype = np.int32 if n < 2**31 else np.int64
+    table = np.full(hi - lo + 1, -1, dtype=dtype)
+    k = ids - lo
+    rows = np.arange(n, dtype=dtype)
+    table[k] = rows
+    # a repeated id keeps one of its rows only: then not every row reads itself back
+    if not np.array_equal(table[k], rows):
+        return None
+    return lo, table
+
+
+def rows_of_ids(table, wanted: np.ndarray) -> np.ndarray:
+    """Rows (int64) of the ids ``wanted`` in a table of :func:`id_table`, -1 where absent."""
+    lo, tab = table
+    hi = lo + tab.size - 1
+    inside = (wanted >= lo) & (wanted <= hi)
+    # clipped before the subtraction: ids far outside would overflow int64
+    got = tab[np.clip(wanted, lo, hi) - lo]
+    return np.where(inside, got, np.int64(-1))
 
 
 # ------------------------------------------------------------------------------------------
@@ -379,8 +441,10 @@ class ChunkedCheck:
     Every chunk is checked with :func:`find_problems` as it is read (:meth:`add_chunk`).
     Two rules reach across forests and are completed over the whole file by the reader:
 
-    * node ids unique across the file: the reader finds the repeated ids by streaming the
-      ``node_id`` column and hands them to :meth:`set_duplicates`;
+    * node ids unique across the file: the reader finds the repeated ids (from the ids of
+      its chunk pass, or by streaming the ``node_id`` column) and hands them to
+      :meth:`set_duplicates`; :meth:`repeats_within_chunks` tells it whether a chunk held
+      an id twice;
     * a descendant outside its chunk: :meth:`outside_descendants` lists the ids to look
       up, and :meth:`resolve` takes the ids found in the file with their snapshots; found
       ones are ``cross_forest_links`` (and ``descendant_not_later`` if not later), the rest
@@ -406,15 +470,22 @@ class ChunkedCheck:
         self._links: list[dict] = [{}]
         self._duplicates: np.ndarray | None = None
         self._found: tuple | None = None
+        self._repeats_within = False
 
     def add_chunk(self, columns: dict, row_numbers=None) -> None:
         """Check one chunk of whole forests (``row_numbers``: their file rows)."""
         links: dict = {}
         found = find_problems(columns, self.snap_nums, self.snap_z, row_numbers=row_numbers,
                               check_snapshots=False, links=links)
+        self._repeats_within |= any(p.rule == "duplicate_ids" for p in found)
         self._chunks.append([p for p in found
                              if p.rule not in ("duplicate_ids", "missing_descendants")])
         self._links.append(links)
+
+    def repeats_within_chunks(self) -> bool:
+        """Whether a node id occurs twice within one chunk (ids repeated across chunks are
+        the reader's to find)."""
+        return self._repeats_within
 
     def id_columns_ok(self) -> bool:
         """False if an id column is not integral (the id rules are then not checked)."""
