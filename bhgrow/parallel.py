@@ -632,28 +632,34 @@ def _terminate(pool) -> None:
     pool.shutdown(wait=False, cancel_futures=True)
 
 
-def map_tasks(task, n_tasks: int, workers: int, *, what: str,
-              start_method: str | None = None) -> list:
+def map_tasks(task, n_tasks: int, workers: int, *, what: str, done=None,
+              start_method: str | None = None) -> list | None:
     """``[task(0), ..., task(n_tasks - 1)]`` on ``workers`` local workers (this process and
     ``workers - 1`` forked ones, as for the chunk runs), taken in index order.
 
     ``task`` must be picklable where workers are not forked (``functools.partial`` of a
     module-level function); only indices and results travel between processes. ``what``
-    completes the message raised if a worker dies ("... while {what}").
+    completes the message raised if a worker dies ("... while {what}"). With ``done``,
+    ``done(i, result)`` is called in index order as results arrive (a result is held only
+    until the ones before it are in) and None is returned.
     """
-    out: list = [None] * n_tasks
+    out: dict = {}
+    nxt = [0]
     n_proc = min(n_local_workers(workers), n_tasks)
 
-    def done(i, r):
+    def got(i, r):
         out[i] = r
+        while done is not None and nxt[0] in out:
+            done(nxt[0], out.pop(nxt[0]))
+            nxt[0] += 1
 
     if n_proc <= 1:
         for i in range(n_tasks):
-            done(i, task(i))
+            got(i, task(i))
     else:
-        _run_pool(n_proc, task, list(range(n_tasks)), done, lambda: None,
+        _run_pool(n_proc, task, list(range(n_tasks)), got, lambda: None,
                   start_method or default_start_method(), what)
-    return out
+    return None if done is not None else [out[i] for i in range(n_tasks)]
 
 
 def _run_pool(n_proc, task, todo, done, started, start_method, what) -> None:

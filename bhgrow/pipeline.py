@@ -124,9 +124,9 @@ def run_model(forest: "Forest | HDF5Forests", config: Config | None = None, *,
     config = config or load_config(None)
     cosmo = Cosmology.from_name(config.run.cosmology)
     t0 = time.perf_counter()
-    if isinstance(forest, HDF5Forests) and not forest.checked:
-        forest.check(config.run.chunk_nodes)
     workers = config.run.workers if workers is None else workers
+    if isinstance(forest, HDF5Forests) and not forest.checked:
+        forest.check(config.run.chunk_nodes, workers)      # local workers, even with Dask
     dask = dask if dask is not None else (config.run.dask_scheduler or None)
     client, owned = par.connect_dask(dask) if dask else (None, False)
     try:
@@ -415,8 +415,10 @@ def run(config=None, *, trees=None, out=None, overwrite: bool = False,
         forest, path = trees, None
     else:
         path = Path(trees) if trees is not None else demo_trees_path()
-        forest = (open_forests(path, max_nodes=config.run.chunk_nodes) if is_hdf5_path(path)
-                  else load_forest(path))
+        # the file is checked before the run, by as many local workers as the run has
+        forest = (open_forests(path, max_nodes=config.run.chunk_nodes,
+                               workers=config.run.workers if workers is None else workers)
+                  if is_hdf5_path(path) else load_forest(path))
     partial = None
     if out is not None:
         out = Path(out)

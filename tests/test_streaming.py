@@ -360,8 +360,9 @@ def defects(path, demo):
     ]
 
 
-@pytest.mark.parametrize("max_nodes", [1, 3000, 10**9])
-def test_bad_files_give_the_eager_message(max_nodes, demo, tmp_path):
+@pytest.mark.parametrize("max_nodes, workers", [(1, 1), (3000, 1), (10**9, 1), (3000, 2)])
+def test_bad_files_give_the_eager_message(max_nodes, workers, demo, tmp_path):
+    # with 2 workers the chunks are checked in two processes and merged in file order
     base = write_hdf5(demo, tmp_path / "base.h5")
     for name, changes in defects(base, demo):
         path = tmp_path / f"{name}.h5"
@@ -370,7 +371,7 @@ def test_bad_files_give_the_eager_message(max_nodes, demo, tmp_path):
         with pytest.raises(BhgrowInputError) as want:
             load_forest(path)
         with pytest.raises(BhgrowInputError) as got:
-            open_forests(path, max_nodes=max_nodes)
+            open_forests(path, max_nodes=max_nodes, workers=workers)
         assert str(got.value) == str(want.value), name
         assert got.value.rule == want.value.rule and got.value.rows == want.value.rows
         assert str(path) in str(got.value) and "Traceback" not in str(got.value)

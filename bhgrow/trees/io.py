@@ -36,6 +36,7 @@ from __future__ import annotations
 
 import json
 import os
+from functools import partial
 from pathlib import Path
 
 import numpy as np
@@ -606,7 +607,7 @@ class HDF5Forests:
             return np.argsort(self._start, kind="stable")
         return np.arange(self.n_forests)
 
-    def check(self, max_nodes: int = 2_000_000) -> "HDF5Forests":
+    def check(self, max_nodes: int = 2_000_000, workers: int = 1) -> "HDF5Forests":
         """Check the whole file against every validation rule, chunk by chunk.
 
         Forests are read in file order in chunks of at most ``max_nodes`` nodes (a larger
@@ -617,6 +618,10 @@ class HDF5Forests:
         flag byte per value (no more bytes than that many ids) records them during the
         chunk pass: ids found unique that way need no second pass over ``node_id``; a file
         of at most ``max(max_nodes, READ_BLOCK_ROWS)`` nodes keeps its ids from the pass.
+
+        With ``workers`` > 1 the chunks are read and checked by that many local processes
+        (:func:`bhgrow.parallel.map_tasks`: this one and forked ones); the results, and so
+        the messages, are the same as with one. Memory: one chunk per worker.
 
         Raises
         ------
@@ -632,13 +637,24 @@ class HDF5Forests:
         seen = _SeenIds(8 * budget)
         # a file of at most `budget` nodes: its ids are kept from the pass, not read again
         kept = [] if self.n_nodes <= budget else None
-        for ids in self.chunk_ids(max_nodes):
-            cols, rows = self.read_columns(ids, rows=True)
-            chk.add_chunk(cols, rows)
-            seen.add(cols["node_id"])
+
+        def add(found, links, node_id):
+            chk.add_found(found, links)
+            seen.add(node_id)
             if kept is not None:
-                kept.append(cols["node_id"])
-            del cols, rows
+                kept.append(node_id)
+
+        chunks = list(self.chunk_ids(max_nodes))
+        if workers != 1 and len(chunks) > 1:
+            from ..parallel import map_tasks
+
+            # results come back in file order, one chunk at a time (memory: their ids)
+            task = partial(_check_chunk, self, chunks, self._snap_raw, self._z_raw)
+            map_tasks(task, len(chunks), workers, what=f"checking {self.source}",
+                      done=lambda i, r: add(*r))
+        else:
+            for i in range(len(chunks)):
+                add(*_check_chunk(self, chunks, self._snap_raw, self._z_raw, i))
         if chk.id_columns_ok():
             if seen.all_unique() and not chk.repeats_within_chunks():
                 chk.set_duplicates(np.zeros(0, np.int64))
@@ -794,8 +810,16 @@ class _SeenIds:
         return True
 
 
+def _check_chunk(forests: HDF5Forests, chunks: list, snap_nums, snap_z, index: int):
+    """Read chunk ``index`` of ``chunks`` and check it alone (a task of
+    :meth:`HDF5Forests.check`): ``(problems, links, node_id)``."""
+    cols, rows = forests.read_columns(chunks[index], rows=True)
+    found, links = ChunkedCheck.check_chunk(cols, snap_nums, snap_z, rows)
+    return found, links, cols["node_id"]
+
+
 def open_forests(path, *, check: bool = True, max_nodes: int = 2_000_000,
-                 box_mpc: float | None = None) -> HDF5Forests:
+                 box_mpc: float | None = None, workers: int = 1) -> HDF5Forests:
     """Open a bhgrow HDF5 forest file for reading chunk by chunk.
 
     Parameters
@@ -808,6 +832,9 @@ def open_forests(path, *, check: bool = True, max_nodes: int = 2_000_000,
         Nodes per chunk of the check (bounds its memory).
     box_mpc : float, optional
         Comoving box side [Mpc] replacing the file's.
+    workers : int
+        Local processes checking chunks at once (:meth:`HDF5Forests.check`; 0 = one per
+        CPU core).
 
     Returns
     -------
@@ -815,7 +842,7 @@ def open_forests(path, *, check: bool = True, max_nodes: int = 2_000_000,
     """
     source = HDF5Forests(path, box_mpc=box_mpc)
     if check:
-        source.check(max_nodes)
+        source.check(max_nodes, workers)
     return source
 
 

@@ -474,9 +474,19 @@ class ChunkedCheck:
 
     def add_chunk(self, columns: dict, row_numbers=None) -> None:
         """Check one chunk of whole forests (``row_numbers``: their file rows)."""
+        self.add_found(*self.check_chunk(columns, self.snap_nums, self.snap_z, row_numbers))
+
+    @staticmethod
+    def check_chunk(columns: dict, snap_nums, snap_z, row_numbers=None) -> tuple:
+        """The rules on one chunk alone: ``(problems, links)`` for :meth:`add_found` (so
+        chunks can be checked in other processes and added here in file order)."""
         links: dict = {}
-        found = find_problems(columns, self.snap_nums, self.snap_z, row_numbers=row_numbers,
+        found = find_problems(columns, snap_nums, snap_z, row_numbers=row_numbers,
                               check_snapshots=False, links=links)
+        return found, links
+
+    def add_found(self, found: list, links: dict) -> None:
+        """Add the result of :meth:`check_chunk` for the next chunk."""
         self._repeats_within |= any(p.rule == "duplicate_ids" for p in found)
         self._chunks.append([p for p in found
                              if p.rule not in ("duplicate_ids", "missing_descendants")])
