@@ -360,26 +360,40 @@ def _write_ecsv_rows(table, path: Path, meta: dict | None = None) -> None:
 
 
 def write_run(result: RunResult, config: Config, out, *, overwrite: bool = False,
-              products: bool = True) -> Path:
-    """Write a run directory atomically (see :mod:`bhgrow.output`)."""
+              products: bool = True, workers: int | None = None) -> Path:
+    """Write a run directory atomically (see :mod:`bhgrow.output`).
+
+    With ``workers`` (default ``run.workers``) above 1, the figures are drawn by a forked
+    process while this one writes the catalogues, histories and tables
+    (:func:`bhgrow.products.make_products`); the files are the same.
+    """
+    from .parallel import n_local_workers
+
+    workers = config.run.workers if workers is None else workers
     with RunDirectory(out, overwrite=overwrite) as tmp:
-        _write_ecsv_rows(result.black_holes, tmp / "black_holes.ecsv",
-                         meta={"made_by": f"bhgrow {__version__}", "seed": config.run.seed,
-                               "trees": result.provenance.get("trees")})
-        _write_ecsv_rows(result.mergers, tmp / "mergers.ecsv",
-                         meta={"made_by": f"bhgrow {__version__}", "seed": config.run.seed})
-        _write_ecsv_rows(result.pending, tmp / "pending_pairs.ecsv",
-                         meta={"made_by": f"bhgrow {__version__}", "seed": config.run.seed})
-        if config.run.histories:
-            write_histories(result.histories, tmp / "histories.h5")
-        (tmp / "config.toml").write_text(write_toml(config.table))
-        write_json(result.provenance, tmp / "run.json")
+        def files():
+            _write_ecsv_rows(result.black_holes, tmp / "black_holes.ecsv",
+                             meta={"made_by": f"bhgrow {__version__}",
+                                   "seed": config.run.seed,
+                                   "trees": result.provenance.get("trees")})
+            _write_ecsv_rows(result.mergers, tmp / "mergers.ecsv",
+                             meta={"made_by": f"bhgrow {__version__}", "seed": config.run.seed})
+            _write_ecsv_rows(result.pending, tmp / "pending_pairs.ecsv",
+                             meta={"made_by": f"bhgrow {__version__}", "seed": config.run.seed})
+            if config.run.histories:
+                write_histories(result.histories, tmp / "histories.h5")
+            (tmp / "config.toml").write_text(write_toml(config.table))
+            write_json(result.provenance, tmp / "run.json")
+
         if products:
             from .products import make_products
 
             result.summary = make_products(result, config,
                                            Cosmology.from_name(config.run.cosmology), tmp,
-                                           name=Path(out).name)
+                                           name=Path(out).name,
+                                           workers=n_local_workers(workers), also=files)
+        else:
+            files()
     return Path(out)
 
 
@@ -435,6 +449,6 @@ def run(config=None, *, trees=None, out=None, overwrite: bool = False,
     result = run_model(forest, config, progress=progress, trees_path=path, workers=workers,
                        dask=dask, checkpoint_dir=partial, resume=resume)
     if out is not None:
-        write_run(result, config, out, overwrite=overwrite)
+        write_run(result, config, out, overwrite=overwrite, workers=workers)
         shutil.rmtree(partial, ignore_errors=True)
     return result

@@ -219,9 +219,17 @@ def _bin_gyr(tables) -> np.ndarray:
     return np.asarray(n["dt_gyr"], dtype=float)[first]
 
 
-def make_products(result, config, cosmo, run_dir: Path, *, name: str | None = None) -> dict:
-    """Write tables/, figures/, summary.md and summary.json into ``run_dir``."""
+def make_products(result, config, cosmo, run_dir: Path, *, name: str | None = None,
+                  workers: int = 1, also=None) -> dict:
+    """Write tables/, figures/, summary.md and summary.json into ``run_dir``.
+
+    ``also``: a function writing other files of the run directory, called here first. With
+    ``workers`` > 1 where workers are forked (Linux), the figures (~half the time, with
+    matplotlib's import) are drawn by a forked process meanwhile
+    (:func:`bhgrow.parallel.map_tasks`); the files are the same either way.
+    """
     from .output import write_ecsv, write_json
+    from .parallel import default_start_method, map_tasks
 
     run_dir = Path(run_dir)
     settings = config.gw
@@ -229,17 +237,33 @@ def make_products(result, config, cosmo, run_dir: Path, *, name: str | None = No
     tables = build_tables(result.black_holes, result.mergers, hist, cosmo,
                           config.binning, meta={"made_by": f"bhgrow {__version__}"})
     gws = gw_summary(result.mergers, cosmo, settings, config.binning.z_edges)
-    tdir = run_dir / "tables"
-    tdir.mkdir(exist_ok=True)
-    write_tables(tables, tdir)
-    if gws["background"] is not None:
-        write_ecsv(gws["background"], tdir / "gw_background.ecsv")
-    make_figures(tables, result.mergers, hist, result.black_holes, gws, settings,
-                 run_dir / "figures")
-    summary = _summary(result.provenance, result.n_seeds, result.ledger, result.baryons, gws,
-                       settings)
-    write_json(summary, run_dir / "summary.json")
-    (run_dir / "summary.md").write_text(_summary_md(summary, name or run_dir.name))
+
+    def figures():
+        return make_figures(tables, result.mergers, hist, result.black_holes, gws, settings,
+                            run_dir / "figures")
+
+    def files():
+        if also is not None:
+            also()
+        tdir = run_dir / "tables"
+        tdir.mkdir(exist_ok=True)
+        write_tables(tables, tdir)
+        if gws["background"] is not None:
+            write_ecsv(gws["background"], tdir / "gw_background.ecsv")
+        summary = _summary(result.provenance, result.n_seeds, result.ledger, result.baryons,
+                           gws, settings)
+        write_json(summary, run_dir / "summary.json")
+        (run_dir / "summary.md").write_text(_summary_md(summary, name or run_dir.name))
+        return summary
+
+    if workers > 1 and default_start_method() == "fork":
+        # task 0 goes to the forked process, task 1 runs here (a closure is fine: forked
+        # workers inherit it, nothing is pickled but the figures' paths)
+        _, summary = map_tasks(lambda i: figures() if i == 0 else files(), 2, 2,
+                               what="drawing the run's figures")
+    else:
+        summary = files()
+        figures()
     return summary
 
 

@@ -332,3 +332,20 @@ def test_map_tasks_raises_a_task_error_in_this_process():
 
     with pytest.raises(BhgrowInputError, match="task 7 refused"):
         map_tasks(partial(_square_or_fail, 7), 20, 2, what="testing")
+
+
+def test_run_directory_written_with_two_workers_is_the_same(reference, tmp_path):
+    # the figures are drawn by a forked process while this one writes the rest
+    from bhgrow.pipeline import write_run
+
+    cfg = from_table({"run": {**FAST, "chunk_nodes": 10**9}})
+    one = write_run(reference, cfg, tmp_path / "one", workers=1)
+    two = write_run(reference, cfg, tmp_path / "two", workers=2)
+    files = sorted(p.relative_to(one) for p in one.rglob("*") if p.is_file())
+    assert files == sorted(p.relative_to(two) for p in two.rglob("*") if p.is_file())
+    assert any(f.suffix == ".png" for f in files) and len(files) > 15
+    for f in files:
+        a, b = (one / f).read_bytes(), (two / f).read_bytes()
+        if f.name == "summary.md":              # its title names the run directory
+            a, b = a.replace(b"(one)", b""), b.replace(b"(two)", b"")
+        assert a == b, f
