@@ -17,7 +17,8 @@ round and the median of the per-round ratios is reported):
    and the CPU time of the process and its children (``os.wait4``-style ``resource``
    accounting of the finished child);
 2. **stages** -- the same steps through the Python API in a new process, each timed:
-   imports, ``open_forests`` (reads the index and checks the whole file), ``run_model``
+   imports, ``open_forests`` (reads the index and checks the whole file, while this
+   process sets up the cosmology), ``run_model``
    split into the chunk runs and the rest (merging, catalogues, LISA SNRs), and
    ``write_run`` (catalogues, histories, tables, summary and, drawn meanwhile by a forked
    process when there are several workers, the figures). The file check and the figures
@@ -55,7 +56,10 @@ t = {"imports": time.perf_counter() - t0}
 trees, out, workers = sys.argv[1], sys.argv[2], int(sys.argv[3])
 cfg = load_config(None)
 s = time.perf_counter()
-forest = open_forests(trees, max_nodes=cfg.run.chunk_nodes, workers=workers)
+# as bhgrow.pipeline.run: the cosmology is set up while the other workers check
+from bhgrow.cosmology import Cosmology
+forest = open_forests(trees, check=False).check(
+    cfg.run.chunk_nodes, workers, meanwhile=lambda: Cosmology.from_name(cfg.run.cosmology))
 t["open_and_check"] = time.perf_counter() - s
 inner = {}
 def timed(name, fn):

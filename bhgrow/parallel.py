@@ -403,8 +403,12 @@ class Checkpoint:
 
     def save(self, index: int, result) -> None:
         """Write the result of chunk ``index`` (atomically)."""
-        blob = {"forest_ids_sha256": _ids_sha256(self.plan[index]), "result": result}
-        _atomic_write(self.chunk_path(index), pickle.dumps(blob, protocol=5))
+        save_chunk(self.directory, index, self.plan[index], result)
+
+    def load(self, index: int):
+        """The result of chunk ``index`` as saved (by this process or a worker)."""
+        with open(self.chunk_path(index), "rb") as fh:
+            return pickle.load(fh)["result"]
 
     def _read_finished(self) -> dict:
         out = {}
@@ -433,6 +437,19 @@ class Checkpoint:
         shutil.rmtree(self.directory, ignore_errors=True)
 
 
+def save_chunk(directory, index: int, forest_ids, result) -> None:
+    """Write chunk ``index``'s result into checkpoint ``directory`` (atomically), with the
+    hash of its forest ids (a resumed run reuses it only for the same forests)."""
+    blob = {"forest_ids_sha256": _ids_sha256(forest_ids), "result": result}
+    _atomic_write(Path(directory) / "chunks" / f"chunk-{index:05d}.pkl",
+                  pickle.dumps(blob, protocol=5))
+
+
+class _Saved:
+    """What a pool worker returns for a chunk it saved in the checkpoint itself: the result
+    is read back from the file instead of being pickled through a pipe as well."""
+
+
 # ------------------------------------------------------------------------------------------
 # running chunks
 # ------------------------------------------------------------------------------------------
@@ -459,15 +476,20 @@ def run_one_chunk(forest, ids, model, run, cosmo):
     return replace(res, chunk_s=time.perf_counter() - t0)
 
 
-def _plan_chunk(forest, plan, model, run, cosmo, index: int):
-    """Chunk ``index`` of ``plan`` (a task of :func:`_run_pool`)."""
-    return run_one_chunk(forest, plan[index], model, run, cosmo)
+def _plan_chunk(forest, plan, model, run, cosmo, save_dir, index: int):
+    """Chunk ``index`` of ``plan`` (a task of :func:`_run_pool`), saved into checkpoint
+    directory ``save_dir`` if given (by the process that ran it: the workers write their
+    chunks in parallel, not one after the other in the parent)."""
+    r = run_one_chunk(forest, plan[index], model, run, cosmo)
+    if save_dir is not None:
+        save_chunk(save_dir, index, plan[index], r)
+    return r
 
 
 _WORKER: dict = {}
 
 
-def _init_worker(task) -> None:
+def _init_worker(task, saved: bool = False) -> None:
     import signal
 
     # Ctrl-C goes to the parent, which stops the workers itself (no tracebacks from them)
@@ -476,6 +498,7 @@ def _init_worker(task) -> None:
     # own chunks reuse it) are not copy-on-write copies (bhgrow._alloc)
     release_free_memory()
     _WORKER["task"] = task
+    _WORKER["saved"] = saved
     threading.Thread(target=_exit_with_parent, args=(os.getppid(),), daemon=True).start()
 
 
@@ -487,7 +510,8 @@ def _exit_with_parent(ppid: int) -> None:
 
 
 def _worker_task(index: int):
-    return index, _WORKER["task"](index)
+    r = _WORKER["task"](index)
+    return index, (_Saved() if _WORKER["saved"] else r)
 
 
 def _dask_chunk(index: int, sub, model, run, cosmo):
@@ -585,10 +609,12 @@ def run_chunks(forest, plan: list, model, run, cosmo, *, workers: int = 1, clien
             bars.append(tqdm(total=len(plan), initial=len(plan) - len(todo), desc="forests",
                              unit="chunk", disable=not progress or len(plan) < 2))
 
-    def done(i, r):
-        results[i] = r
-        if checkpoint is not None:
+    def done(i, r, saved=False):
+        if isinstance(r, _Saved):
+            r = checkpoint.load(i)
+        elif checkpoint is not None and not saved:
             checkpoint.save(i, r)
+        results[i] = r
         open_bar()
         bars[0].update(1)
 
@@ -606,9 +632,11 @@ def run_chunks(forest, plan: list, model, run, cosmo, *, workers: int = 1, clien
         else:
             kept = (f"; finished chunks are kept in {checkpoint.directory}: rerun with "
                     f"--resume" if checkpoint is not None else "")
-            _run_pool(n_proc, partial(_plan_chunk, forest, plan, model, run, cosmo), todo,
-                      done, open_bar, start_method or default_start_method(),
-                      f"running chunks of whole forests{kept}")
+            save_dir = checkpoint.directory if checkpoint is not None else None
+            _run_pool(n_proc, partial(_plan_chunk, forest, plan, model, run, cosmo, save_dir),
+                      todo, partial(done, saved=save_dir is not None), open_bar,
+                      start_method or default_start_method(),
+                      f"running chunks of whole forests{kept}", saved=save_dir is not None)
     except KeyboardInterrupt:
         interrupted = True
         raise
@@ -633,7 +661,7 @@ def _terminate(pool) -> None:
 
 
 def map_tasks(task, n_tasks: int, workers: int, *, what: str, done=None,
-              start_method: str | None = None) -> list | None:
+              start_method: str | None = None, meanwhile=None) -> list | None:
     """``[task(0), ..., task(n_tasks - 1)]`` on ``workers`` local workers (this process and
     ``workers - 1`` forked ones, as for the chunk runs), taken in index order.
 
@@ -641,7 +669,9 @@ def map_tasks(task, n_tasks: int, workers: int, *, what: str, done=None,
     module-level function); only indices and results travel between processes. ``what``
     completes the message raised if a worker dies ("... while {what}"). With ``done``,
     ``done(i, result)`` is called in index order as results arrive (a result is held only
-    until the ones before it are in) and None is returned.
+    until the ones before it are in) and None is returned. ``meanwhile()``, if given, runs
+    in this process once the other workers have their first tasks, before this process
+    takes any (work of the caller's that would otherwise wait for the tasks to end).
     """
     out: dict = {}
     nxt = [0]
@@ -654,15 +684,18 @@ def map_tasks(task, n_tasks: int, workers: int, *, what: str, done=None,
             nxt[0] += 1
 
     if n_proc <= 1:
+        if meanwhile is not None:
+            meanwhile()
         for i in range(n_tasks):
             got(i, task(i))
     else:
-        _run_pool(n_proc, task, list(range(n_tasks)), got, lambda: None,
+        _run_pool(n_proc, task, list(range(n_tasks)), got, meanwhile or (lambda: None),
                   start_method or default_start_method(), what)
     return None if done is not None else [out[i] for i in range(n_tasks)]
 
 
-def _run_pool(n_proc, task, todo, done, started, start_method, what) -> None:
+def _run_pool(n_proc, task, todo, done, started, start_method, what, *,
+              saved: bool = False) -> None:
     """Run ``task(i)`` for ``i`` in ``todo`` on ``n_proc`` workers: ``n_proc - 1`` forked
     processes and this one; ``done(i, result)`` in this process's threads (under a lock).
 
@@ -671,7 +704,8 @@ def _run_pool(n_proc, task, todo, done, started, start_method, what) -> None:
     in use (no pages to fault in afresh, as a new process must for every array it writes)
     and its results need no transfer. A feeder thread hands the pool's processes their
     tasks and passes their results on as they arrive; it only waits on the pool, so it
-    hardly competes with this process's work.
+    hardly competes with this process's work. With ``saved``, ``task`` stores its result
+    itself and the pool's processes return a :class:`_Saved` marker in its place.
     """
     import multiprocessing as mp
     from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
@@ -679,7 +713,7 @@ def _run_pool(n_proc, task, todo, done, started, start_method, what) -> None:
 
     n_pool = n_proc - 1
     pool = ProcessPoolExecutor(max_workers=n_pool, mp_context=mp.get_context(start_method),
-                               initializer=_init_worker, initargs=(task,))
+                               initializer=_init_worker, initargs=(task, saved))
     queue = list(reversed(todo))              # pop() gives the largest chunk left
     lock = threading.Lock()
     stop = threading.Event()
@@ -704,8 +738,11 @@ def _run_pool(n_proc, task, todo, done, started, start_method, what) -> None:
                 if not live:
                     return
                 finished, _ = wait(list(live), timeout=0.2, return_when=FIRST_COMPLETED)
-                for fut in sorted(finished, key=live.get):
+                got = sorted(finished, key=live.get)
+                for fut in got:
                     del live[fut]
+                submit_more(live)      # the idle process gets work before results are handled
+                for fut in got:
                     finish(*fut.result())
         except BaseException as exc:  # noqa: BLE001 - handed to the main thread
             failure.append(exc)

@@ -429,10 +429,14 @@ def run(config=None, *, trees=None, out=None, overwrite: bool = False,
         forest, path = trees, None
     else:
         path = Path(trees) if trees is not None else demo_trees_path()
-        # the file is checked before the run, by as many local workers as the run has
-        forest = (open_forests(path, max_nodes=config.run.chunk_nodes,
-                               workers=config.run.workers if workers is None else workers)
-                  if is_hdf5_path(path) else load_forest(path))
+        if is_hdf5_path(path):
+            # the file is checked before the run, by as many local workers as the run has;
+            # meanwhile this process sets up the cosmology (astropy's import: ~0.5 s)
+            forest = open_forests(path, check=False).check(
+                config.run.chunk_nodes, config.run.workers if workers is None else workers,
+                meanwhile=lambda: Cosmology.from_name(config.run.cosmology))
+        else:
+            forest = load_forest(path)
     partial = None
     if out is not None:
         out = Path(out)

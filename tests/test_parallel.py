@@ -122,6 +122,18 @@ def test_workers_and_chunking_do_not_change_results(sub, reference):
     assert_same(reference, three)
 
 
+def test_worker_chunks_saved_by_the_workers_are_complete(sub, reference, tmp_path):
+    # with a checkpoint, each pool process writes the chunks it ran and this process reads
+    # them back: every chunk file is there, and the merged results are the same
+    cfg = from_table({"run": {**FAST, "chunk_nodes": 6000}})
+    d = tmp_path / "run.partial"
+    two = run_model(sub, cfg, workers=2, checkpoint_dir=d)
+    assert_same(reference, two)
+    manifest = json.loads((d / "manifest.json").read_text())
+    assert len(list((d / "chunks").glob("chunk-*.pkl"))) == manifest["n_chunks"] > 2
+    assert not list((d / "chunks").glob(".*"))                # no temporary files left
+
+
 def test_workers_option_validation(capsys):
     with pytest.raises(BhgrowInputError, match="`workers` of run must be >= 0"):
         from_table({"run": {"workers": -1}})
@@ -323,6 +335,19 @@ def test_map_tasks_keeps_index_order_and_uses_both_processes():
     assert map_tasks(partial(_square_or_fail, -1), 3, 1, what="testing") == \
         [(os.getpid(), i * i) for i in range(3)]
     assert map_tasks(partial(_square_or_fail, -1), 0, 2, what="testing") == []
+
+
+@pytest.mark.parametrize("workers", [1, 2])
+def test_map_tasks_runs_meanwhile_once_in_this_process(workers):
+    from functools import partial
+
+    from bhgrow.parallel import map_tasks
+
+    ran = []
+    got = map_tasks(partial(_square_or_fail, -1), 6, workers, what="testing",
+                    meanwhile=lambda: ran.append(os.getpid()))
+    assert ran == [os.getpid()]
+    assert [r[1] for r in got] == [i * i for i in range(6)]
 
 
 def test_map_tasks_raises_a_task_error_in_this_process():

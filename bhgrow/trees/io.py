@@ -607,7 +607,8 @@ class HDF5Forests:
             return np.argsort(self._start, kind="stable")
         return np.arange(self.n_forests)
 
-    def check(self, max_nodes: int = 2_000_000, workers: int = 1) -> "HDF5Forests":
+    def check(self, max_nodes: int = 2_000_000, workers: int = 1, *,
+              meanwhile=None) -> "HDF5Forests":
         """Check the whole file against every validation rule, chunk by chunk.
 
         Forests are read in file order in chunks of at most ``max_nodes`` nodes (a larger
@@ -622,6 +623,8 @@ class HDF5Forests:
         With ``workers`` > 1 the chunks are read and checked by that many local processes
         (:func:`bhgrow.parallel.map_tasks`: this one and forked ones); the results, and so
         the messages, are the same as with one. Memory: one chunk per worker.
+        ``meanwhile()``, if given, runs in this process while the other workers check their
+        first chunks (the caller's own set-up, :func:`bhgrow.parallel.map_tasks`).
 
         Raises
         ------
@@ -651,8 +654,10 @@ class HDF5Forests:
             # results come back in file order, one chunk at a time (memory: their ids)
             task = partial(_check_chunk, self, chunks, self._snap_raw, self._z_raw)
             map_tasks(task, len(chunks), workers, what=f"checking {self.source}",
-                      done=lambda i, r: add(*r))
+                      done=lambda i, r: add(*r), meanwhile=meanwhile)
         else:
+            if meanwhile is not None:
+                meanwhile()
             for i in range(len(chunks)):
                 add(*_check_chunk(self, chunks, self._snap_raw, self._z_raw, i))
         if chk.id_columns_ok():
