@@ -25,8 +25,10 @@ round and the median of the per-round ratios is reported):
    also use the workers.
 
 The forest file: ``--trees FILE`` (a bhgrow HDF5 file), or by default the forest set of
-``bench_balance.py`` (17,000 toy forests + one 1e15 Msun cluster forest, 8.4e6 nodes),
-built once and written to a temporary HDF5 file by this bhgrow's writer.
+``bench_balance.py`` built with ``--seed 11`` (17,000 toy forests + one 1e15 Msun cluster
+forest: 7.8e6 nodes, the cluster forest 1.09e6 of them; ``bench_balance.py``'s own default
+seed gives 8.4e6 nodes with a 1.69e6-node cluster), built once and written to a temporary
+HDF5 file by this bhgrow's writer.
 
     python benchmarks/bench_cli.py [--trees FILE] [--repeat 3] [--workers 2]
         [--forests 17000] [--cluster-resolution 3e5]

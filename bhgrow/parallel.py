@@ -20,7 +20,7 @@ independent chunks:
    and reads only the forests of its chunk, and for Dask the parent reads one chunk per
    task in flight, so memory depends on the chunk size, not on the file.
 3. :class:`Checkpoint` writes every finished chunk at once and atomically into
-   ``<run dir>.partial/``; a resumed run reuses the finished chunks and runs the rest, so an
+   ``<run dir>.partial/`` (a local worker process writes the chunks it ran itself); a resumed run reuses the finished chunks and runs the rest, so an
    interrupted run loses at most the chunks in flight.
 
 The caller (:func:`bhgrow.pipeline.run_model`) merges the chunk results and sorts every
@@ -576,7 +576,8 @@ def run_chunks(forest, plan: list, model, run, cosmo, *, workers: int = 1, clien
     client : dask.distributed.Client, optional
         Send chunks to this Dask cluster.
     checkpoint : Checkpoint, optional
-        Reuse its finished chunks; save each new one as soon as it is done.
+        Reuse its finished chunks; save each new one as soon as it is done (local workers
+        save their own chunks; this process reads them back).
     progress : bool
         tqdm progress bar over chunks.
     start_method : str, optional
