@@ -20,8 +20,9 @@ independent chunks:
    and reads only the forests of its chunk, and for Dask the parent reads one chunk per
    task in flight, so memory depends on the chunk size, not on the file.
 3. :class:`Checkpoint` writes every finished chunk at once and atomically into
-   ``<run dir>.partial/`` (a local worker process writes the chunks it ran itself); a resumed run reuses the finished chunks and runs the rest, so an
-   interrupted run loses at most the chunks in flight.
+   ``<run dir>.partial/`` (a local worker process writes the chunks it ran itself); a
+   resumed run reuses the finished chunks and runs the rest, so an interrupted run loses
+   at most the chunks in flight.
 
 The caller (:func:`bhgrow.pipeline.run_model`) merges the chunk results and sorts every
 table by id / time, so the products are the same, bit for bit, for any plan and any number
