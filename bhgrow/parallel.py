@@ -5,11 +5,14 @@ results do not depend on which forests share a chunk (random draws are keyed by 
 node / black-hole id; substeps are chosen per halo). A run is therefore a list of
 independent chunks:
 
-1. :func:`plan_chunks` cuts the forests into chunks by estimated cost (node count),
-   largest first (longest-processing-time-first scheduling, Graham 1969, SIAM J. Appl.
-   Math. 17, 416): a forest at least as large as the target chunk size runs alone, the rest
-   are packed so chunks come out of similar size, and chunks are handed out largest first
-   so a giant forest never waits behind a queue of small ones.
+1. :func:`plan_chunks` cuts the forests into chunks by estimated cost (node count,
+   optionally times a weight per node), largest first (longest-processing-time-first
+   scheduling, Graham 1969, SIAM J. Appl. Math. 17, 416): a forest at least as large as
+   the target chunk size runs alone, the rest are packed so chunks come out of similar
+   cost, and chunks are handed out largest first so a giant forest never waits behind a
+   queue of small ones. During a run with several workers, :class:`CostRefiner` refines the
+   estimate by the time per node measured on the finished chunks (by forest size) and the
+   chunks not yet started are re-planned with it.
 2. :func:`run_chunks` runs the chunks in this process, on ``N`` local workers (this
    process and ``N - 1`` forked ones, a :class:`concurrent.futures.ProcessPoolExecutor`;
    each forked worker holds the forest once and receives only forest ids), or on a
@@ -33,7 +36,11 @@ Cost model
 The engine's cost is ~linear in nodes plus a fixed part per chunk (the per-snapshot
 substep loop runs as often as the stiffest halo of the chunk needs), so more chunks than
 workers only adds overhead: with ``n_workers`` workers and fewer than ``n_workers *
-max_nodes`` nodes, the plan makes about ``n_workers`` chunks of equal node count.
+max_nodes`` nodes, the plan makes about ``n_workers`` chunks of equal node count. Node
+count is the first estimate; the time per node differs by forest size (on the toy
+balance set ~0.25 µs per node of a 1e6-node cluster forest against ~0.5-0.8 µs for
+forests of 1e2-1e3 nodes), which :class:`CostRefiner` learns from the chunks as they
+finish. A re-plan keeps the number of chunks (the fixed part stays the same).
 """
 
 from __future__ import annotations
@@ -73,92 +80,119 @@ DASK_HINT = "pip install -e '.[dask]'"
 # planning
 # ------------------------------------------------------------------------------------------
 def plan_chunks(nodes_per_forest, max_nodes: int, n_workers: int = 1, *,
-                forest_ids=None, contiguous: bool = False) -> list:
+                forest_ids=None, contiguous: bool = False, weights=None,
+                n_chunks: int | None = None) -> list:
     """Cut forests into chunks of whole forests by cost, largest chunk first.
 
     Parameters
     ----------
     nodes_per_forest : array_like of int
-        Node count of each forest (the cost estimate), aligned with ``forest_ids``.
+        Node count of each forest, aligned with ``forest_ids``: the cost estimate (times
+        ``weights`` if given) and what ``max_nodes`` caps.
     max_nodes : int
         Largest chunk, in nodes (>= 1); a single forest above it forms a chunk of its own.
     n_workers : int
         Workers that will run the chunks in parallel (>= 1). With several, the number of
         chunks aimed at is a multiple of ``n_workers`` (at least ``total / max_nodes``) and
-        the target chunk size is ``total`` divided by it, so every worker gets a share and
+        the target chunk cost is the total divided by it, so every worker gets a share and
         chunks of equal cost end together.
     forest_ids : array_like of int, optional
         Forest ids; default ``0 .. n-1`` (positions).
     contiguous : bool
         Pack the forests below the target size into runs of consecutive forests in the
         order given (for a file read chunk by chunk, its row order: each chunk is then read
-        from one stretch of the file), cut where the running node count passes multiples
-        of the mean chunk load.
+        from one stretch of the file), cut where the running cost passes multiples of the
+        mean chunk load.
+    weights : array_like of float, optional
+        Cost per node of each forest (> 0; e.g. measured seconds per node,
+        :class:`CostRefiner`): a forest costs ``nodes * weight``. Default: every node
+        costs the same.
+    n_chunks : int, optional
+        Chunks to aim for, instead of the count derived from ``max_nodes`` and
+        ``n_workers`` (more are made only where ``max_nodes`` forces it).
 
     Returns
     -------
     list of ndarray of int64
         Forest ids of each chunk (sorted within a chunk); chunks in order of decreasing
-        node count (ties: smallest forest id first). Every forest appears exactly once.
+        cost (ties: smallest forest id first). Every forest appears exactly once.
 
     Notes
     -----
-    Forests with at least the target node count run alone. The others are taken in order
-    of decreasing cost and each goes to the least-loaded open chunk if it fits under
-    ``max_nodes``, else opens a new chunk ("worst fit decreasing"; the list-scheduling rule
-    of Graham 1969, SIAM J. Appl. Math. 17, 416). With ``contiguous`` they are cut into the
-    same number of runs instead (more if a run would exceed ``max_nodes``); a run exceeds
-    the mean load by less than its largest forest, the bound the list rule also gives. The
-    plan depends only on the inputs.
+    Forests with at least the target cost (or ``max_nodes`` nodes) run alone. The others
+    are taken in order of decreasing cost and each goes to the least-loaded open chunk if
+    its nodes fit under ``max_nodes``, else opens a new chunk ("worst fit decreasing"; the
+    list-scheduling rule of Graham 1969, SIAM J. Appl. Math. 17, 416). With ``contiguous``
+    they are cut into the same number of runs instead (more if a run would exceed
+    ``max_nodes``); a run exceeds the mean load by less than its largest forest, the bound
+    the list rule also gives. The plan depends only on the inputs.
     """
-    cost = np.asarray(nodes_per_forest, dtype=np.int64)
-    if cost.ndim != 1:
+    nodes = np.asarray(nodes_per_forest, dtype=np.int64)
+    if nodes.ndim != 1:
         raise BhgrowInputError("`nodes_per_forest` of plan_chunks must be one-dimensional")
-    ids = (np.arange(cost.size, dtype=np.int64) if forest_ids is None
+    ids = (np.arange(nodes.size, dtype=np.int64) if forest_ids is None
            else np.asarray(forest_ids, dtype=np.int64))
-    if ids.shape != cost.shape:
-        raise BhgrowInputError(f"plan_chunks: {ids.size} forest ids for {cost.size} costs")
+    if ids.shape != nodes.shape:
+        raise BhgrowInputError(f"plan_chunks: {ids.size} forest ids for {nodes.size} costs")
     if isinstance(max_nodes, bool) or int(max_nodes) != max_nodes or max_nodes < 1:
         raise BhgrowInputError(f"`max_nodes` of plan_chunks must be an integer >= 1; got "
                                f"{max_nodes!r}")
     if isinstance(n_workers, bool) or int(n_workers) != n_workers or n_workers < 1:
         raise BhgrowInputError(f"`n_workers` of plan_chunks must be an integer >= 1; got "
                                f"{n_workers!r}")
-    if cost.size == 0:
+    if n_chunks is not None and (isinstance(n_chunks, bool) or int(n_chunks) != n_chunks
+                                 or n_chunks < 1):
+        raise BhgrowInputError(f"`n_chunks` of plan_chunks must be an integer >= 1; got "
+                               f"{n_chunks!r}")
+    if nodes.size == 0:
         return []
-    if np.any(cost < 0):
+    if np.any(nodes < 0):
         raise BhgrowInputError("`nodes_per_forest` of plan_chunks must be >= 0")
-    total = int(cost.sum())
-    n_chunks = _chunk_count(total, int(max_nodes), int(n_workers))
-    target = _chunk_target(total, int(max_nodes), int(n_workers))
+    if weights is None:
+        cost = nodes.astype(np.float64)
+    else:
+        w = np.asarray(weights, dtype=np.float64)
+        if w.shape != nodes.shape or not np.all(np.isfinite(w) & (w > 0)):
+            raise BhgrowInputError(f"`weights` of plan_chunks must be {nodes.size} finite "
+                                   f"values > 0")
+        cost = nodes * w
+    max_nodes = int(max_nodes)
+    total_nodes = int(nodes.sum())
+    total = float(cost.sum())
+    if n_chunks is None:
+        n_chunks = _chunk_count(total_nodes, max_nodes, int(n_workers))
+    # cost at and above which a forest runs alone (for integer costs, >= total / n is
+    # >= its ceiling); one chunk: only a forest holding all the cost, or above max_nodes
+    target = total if n_chunks == 1 else total / n_chunks
     # largest first; equal costs in id order (deterministic)
     order = np.lexsort((ids, -cost))
-    alone = order[cost[order] >= target]
-    rest = order[cost[order] < target]
+    big = (nodes[order] >= max_nodes) | ((cost[order] >= target) & (cost[order] > 0))
+    alone, rest = order[big], order[~big]
     chunks = [[int(i)] for i in alone]
-    loads = [int(cost[i]) for i in alone]
+    loads = [float(cost[i]) for i in alone]
     if rest.size and contiguous:
-        for run in _contiguous_runs(cost, np.sort(rest), int(max_nodes),
-                                    n_chunks - len(alone)):
+        for run in _contiguous_runs(cost, nodes, np.sort(rest), max_nodes,
+                                    int(n_chunks) - len(alone)):
             chunks.append(run.tolist())
-            loads.append(int(cost[run].sum()))
+            loads.append(float(cost[run].sum()))
     elif rest.size:
-        rest_total = int(cost[rest].sum())
-        k = max(math.ceil(rest_total / int(max_nodes)), n_chunks - len(alone), 1)
+        k = max(math.ceil(int(nodes[rest].sum()) / max_nodes), int(n_chunks) - len(alone), 1)
         k = min(k, int(rest.size))
         bins: list = [[] for _ in range(k)]
-        heap = [(0, b) for b in range(k)]          # (load, bin): least loaded, then lowest bin
+        node_load = [0] * k
+        heap = [(0.0, b) for b in range(k)]        # (load, bin): least loaded, then lowest bin
         for i in rest:
-            c = int(cost[i])
+            c, n = float(cost[i]), int(nodes[i])
             load, b = heap[0]
-            if load + c > max_nodes and load > 0:   # does not fit anywhere: open a chunk
+            if node_load[b] + n > max_nodes and node_load[b] > 0:   # open a new chunk
                 b = len(bins)
                 bins.append([])
-                load = 0
+                node_load.append(0)
                 heapq.heappush(heap, (c, b))
             else:
                 heapq.heapreplace(heap, (load + c, b))
             bins[b].append(int(i))
+            node_load[b] += n
         final = {b: load for load, b in heap}
         for b, members in enumerate(bins):
             if members:
@@ -179,32 +213,117 @@ def _chunk_count(total: int, max_nodes: int, n_workers: int) -> int:
     return math.ceil(n / n_workers) * n_workers
 
 
-def _chunk_target(total: int, max_nodes: int, n_workers: int) -> int:
-    """Node count at and above which a forest runs as a chunk of its own."""
-    if n_workers == 1:
-        return max(1, min(max_nodes, total))
-    return max(1, min(max_nodes, math.ceil(total / _chunk_count(total, max_nodes,
-                                                                   n_workers))))
-
-
-def _contiguous_runs(cost, members, max_nodes: int, min_runs: int) -> list:
-    """Cut ``members`` (positions, in order) into runs of about equal node count, none
-    above ``max_nodes`` (each member costs less than ``max_nodes``)."""
-    c = cost[members]
-    cum = np.cumsum(c)
-    total = int(cum[-1])
-    k = min(max(math.ceil(total / max_nodes), min_runs, 1), members.size)
-    cuts = np.searchsorted(cum, np.arange(1, k) * (total / k), side="right")
+def _contiguous_runs(cost, nodes, members, max_nodes: int, min_runs: int) -> list:
+    """Cut ``members`` (positions, in order) into runs of about equal cost, none above
+    ``max_nodes`` nodes (each member has fewer than ``max_nodes``)."""
+    cum = np.cumsum(cost[members])
+    n = nodes[members]
+    k = min(max(math.ceil(int(n.sum()) / max_nodes), min_runs, 1), members.size)
+    cuts = np.searchsorted(cum, np.arange(1, k) * (float(cum[-1]) / k), side="right")
     bounds = np.unique(np.r_[0, cuts, members.size])
     runs = []
     for a, b in zip(bounds[:-1], bounds[1:]):
-        while b - a > 1 and int(c[a:b].sum()) > max_nodes:   # rare: split off a full run
-            stop = a + max(1, int(np.searchsorted(np.cumsum(c[a:b]), max_nodes,
+        while b - a > 1 and int(n[a:b].sum()) > max_nodes:   # rare: split off a full run
+            stop = a + max(1, int(np.searchsorted(np.cumsum(n[a:b]), max_nodes,
                                                   side="right")))
             runs.append(members[a:stop])
             a = stop
         runs.append(members[a:b])
     return runs
+
+
+class CostRefiner:
+    """Seconds per node by forest size, measured on the finished chunks of a run.
+
+    Node count is only an estimate of a forest's cost: on the toy balance set a node of
+    the 1e6-node cluster forest cost ~0.25 µs of engine time and a node of a 1e3-node
+    forest ~0.8 µs (DEVELOPERS.md). Forests fall into size classes, one per factor of two
+    in node count; every finished chunk gives one equation ``t_c = sum_k N_ck r_k`` (its
+    measured seconds, :attr:`EngineResult.chunk_s`, and its nodes per class), and the
+    rates ``r_k >= 0`` are the non-negative least-squares fit, found by multiplicative
+    updates (ISRA, Daube-Witherspoon & Muehllehner 1986, IEEE Trans. Med. Imaging 5, 61;
+    written from memory) started from the mean rate. With one chunk, or chunks of equal
+    composition, every class keeps the mean rate and a plan made with these weights is the
+    node-count plan.
+
+    Parameters
+    ----------
+    nodes_of : callable
+        ``nodes_of(forest_ids) -> node counts`` (int array, same order).
+    planner : callable
+        ``planner(forest_ids, weights_of, n_chunks) -> plan``: re-plans forests with
+        per-forest weights ``weights_of(forest_ids)`` into ``n_chunks`` chunks
+        (:func:`plan_chunks` with ``weights`` and ``n_chunks``).
+    """
+
+    N_CLASSES = 64
+    N_ITER = 300
+
+    def __init__(self, nodes_of, planner):
+        self.nodes_of = nodes_of
+        self.planner = planner
+        self._rows: list = []
+        self._seconds: list = []
+        self._used = 0                 # measurements in the last re-plan
+        self.n_replans = 0
+
+    @classmethod
+    def size_class(cls, nodes) -> np.ndarray:
+        """Class of forests with ``nodes`` nodes: ``floor(log2(nodes))`` (0 for <= 1)."""
+        n = np.maximum(np.asarray(nodes, dtype=np.float64), 1.0)
+        return np.minimum(np.floor(np.log2(n)).astype(np.int64), cls.N_CLASSES - 1)
+
+    def add(self, forest_ids, seconds: float) -> None:
+        """Record a finished chunk: its forests and its measured time [s]."""
+        n = np.asarray(self.nodes_of(forest_ids), dtype=np.float64)
+        row = np.bincount(self.size_class(n), weights=n, minlength=self.N_CLASSES)
+        if seconds > 0 and row.sum() > 0:
+            self._rows.append(row)
+            self._seconds.append(float(seconds))
+
+    def rates(self) -> np.ndarray | None:
+        """Seconds per node of each size class (None before any chunk is measured)."""
+        if not self._rows:
+            return None
+        a = np.array(self._rows)
+        t = np.array(self._seconds)
+        mean = t.sum() / a.sum()
+        r = np.full(self.N_CLASSES, mean)
+        seen = a.sum(axis=0) > 0
+        a = a[:, seen]
+        x = r[seen].copy()
+        at_t = a.T @ t
+        for _ in range(self.N_ITER):
+            x *= at_t / (a.T @ (a @ x))
+        # a class the fit drives to zero still costs something
+        r[seen] = np.maximum(x, 1e-3 * mean)
+        return r
+
+    def weights(self, forest_ids) -> np.ndarray:
+        """Measured seconds per node of each forest (by its size class)."""
+        r = self.rates()
+        n = self.nodes_of(forest_ids)
+        return np.ones(len(n)) if r is None else r[self.size_class(n)]
+
+    def replan(self, plan: list, order: list) -> bool:
+        """Re-plan the chunks ``plan[i]`` for ``i`` in ``order`` (not yet started, in
+        hand-out order) by the measured costs, in place; True if anything was re-planned.
+
+        Runs when at least two are left and the number of measured chunks has doubled
+        since the last re-plan (1, 2, 4, ...: a re-plan costs about as much as the first
+        plan, so a run of K chunks makes at most log2(K) + 1 of them).
+        """
+        if len(order) < 2 or len(self._rows) < max(1, 2 * self._used):
+            return False
+        self._used = len(self._rows)
+        ids = np.sort(np.concatenate([plan[i] for i in order]))
+        new = self.planner(ids, self.weights, len(order))
+        if len(new) != len(order):       # max_nodes forced another count: keep the plan
+            return False
+        for i, chunk in zip(order, new):
+            plan[i] = chunk
+        self.n_replans += 1
+        return True
 
 
 def n_local_workers(workers: int) -> int:
@@ -376,6 +495,11 @@ class Checkpoint:
         ck.n_reused = len(finished)
         return ck
 
+    def write_plan(self) -> None:
+        """Rewrite the manifest after the chunks not yet run were re-planned (a chunk file
+        whose forest ids then differ from its entry is run again on resume)."""
+        self._write_manifest()
+
     def _write_manifest(self) -> None:
         info = {"format": CHECKPOINT_FORMAT, "schema_version": CHECKPOINT_SCHEMA,
                 "bhgrow_version": __version__, **self.digests, "n_chunks": len(self.plan),
@@ -477,13 +601,16 @@ def run_one_chunk(forest, ids, model, run, cosmo):
     return replace(res, chunk_s=time.perf_counter() - t0)
 
 
-def _plan_chunk(forest, plan, model, run, cosmo, save_dir, index: int):
-    """Chunk ``index`` of ``plan`` (a task of :func:`_run_pool`), saved into checkpoint
-    directory ``save_dir`` if given (by the process that ran it: the workers write their
-    chunks in parallel, not one after the other in the parent)."""
-    r = run_one_chunk(forest, plan[index], model, run, cosmo)
+def _plan_chunk(forest, plan, model, run, cosmo, save_dir, index: int, ids=None):
+    """Chunk ``index`` of ``plan`` (a task of :func:`_run_pool`; a forked worker is handed
+    the chunk's current forest ``ids``, since a re-plan is not seen by its copy of
+    ``plan``), saved into checkpoint directory ``save_dir`` if given (by the process that
+    ran it: the workers write their chunks in parallel, not one after the other in the
+    parent)."""
+    ids = plan[index] if ids is None else ids
+    r = run_one_chunk(forest, ids, model, run, cosmo)
     if save_dir is not None:
-        save_chunk(save_dir, index, plan[index], r)
+        save_chunk(save_dir, index, ids, r)
     return r
 
 
@@ -510,8 +637,8 @@ def _exit_with_parent(ppid: int) -> None:
     os._exit(1)
 
 
-def _worker_task(index: int):
-    r = _WORKER["task"](index)
+def _worker_task(index: int, arg=None):
+    r = _WORKER["task"](index) if arg is None else _WORKER["task"](index, arg)
     return index, (_Saved() if _WORKER["saved"] else r)
 
 
@@ -559,7 +686,7 @@ def dask_slots(client) -> int:
 
 def run_chunks(forest, plan: list, model, run, cosmo, *, workers: int = 1, client=None,
                checkpoint: Checkpoint | None = None, progress: bool = False,
-               start_method: str | None = None) -> list:
+               start_method: str | None = None, refiner: CostRefiner | None = None) -> list:
     """Run every chunk of ``plan``; the EngineResults in plan order.
 
     Parameters
@@ -584,6 +711,11 @@ def run_chunks(forest, plan: list, model, run, cosmo, *, workers: int = 1, clien
     start_method : str, optional
         multiprocessing start method for local workers (default
         :func:`default_start_method`).
+    refiner : CostRefiner, optional
+        With several local workers or Dask: each finished chunk's time is recorded, and
+        before a chunk is handed out the chunks not yet started are re-planned by the
+        measured time per node (``plan`` is changed in place, and the checkpoint's
+        manifest rewritten). Results do not depend on the plan.
 
     Returns
     -------
@@ -617,8 +749,15 @@ def run_chunks(forest, plan: list, model, run, cosmo, *, workers: int = 1, clien
         elif checkpoint is not None and not saved:
             checkpoint.save(i, r)
         results[i] = r
+        if refiner is not None:
+            refiner.add(plan[i], r.chunk_s)
         open_bar()
         bars[0].update(1)
+
+    def refresh(order):
+        """Before a hand-out: re-plan the chunks not started (``order``) by measured cost."""
+        if refiner is not None and refiner.replan(plan, order) and checkpoint is not None:
+            checkpoint.write_plan()
 
     interrupted = False
     try:
@@ -626,7 +765,7 @@ def run_chunks(forest, plan: list, model, run, cosmo, *, workers: int = 1, clien
             pass
         elif client is not None:
             open_bar()
-            _run_dask(client, forest, plan, todo, model, run, cosmo, done)
+            _run_dask(client, forest, plan, todo, model, run, cosmo, done, refresh)
         elif n_proc <= 1:
             open_bar()
             for i in todo:
@@ -638,7 +777,8 @@ def run_chunks(forest, plan: list, model, run, cosmo, *, workers: int = 1, clien
             _run_pool(n_proc, partial(_plan_chunk, forest, plan, model, run, cosmo, save_dir),
                       todo, partial(done, saved=save_dir is not None), open_bar,
                       start_method or default_start_method(),
-                      f"running chunks of whole forests{kept}", saved=save_dir is not None)
+                      f"running chunks of whole forests{kept}", saved=save_dir is not None,
+                      refresh=refresh, payload=plan.__getitem__)
     except KeyboardInterrupt:
         interrupted = True
         raise
@@ -697,7 +837,7 @@ def map_tasks(task, n_tasks: int, workers: int, *, what: str, done=None,
 
 
 def _run_pool(n_proc, task, todo, done, started, start_method, what, *,
-              saved: bool = False) -> None:
+              saved: bool = False, refresh=None, payload=None) -> None:
     """Run ``task(i)`` for ``i`` in ``todo`` on ``n_proc`` workers: ``n_proc - 1`` forked
     processes and this one; ``done(i, result)`` in this process's threads (under a lock).
 
@@ -708,6 +848,9 @@ def _run_pool(n_proc, task, todo, done, started, start_method, what, *,
     tasks and passes their results on as they arrive; it only waits on the pool, so it
     hardly competes with this process's work. With ``saved``, ``task`` stores its result
     itself and the pool's processes return a :class:`_Saved` marker in its place.
+    ``refresh(order)``, if given, is called (under the lock) before each hand-out with the
+    tasks not yet handed out, in hand-out order; a pool process then runs
+    ``task(i, payload(i))``, so it gets what ``refresh`` may have changed.
     """
     import multiprocessing as mp
     from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
@@ -723,7 +866,11 @@ def _run_pool(n_proc, task, todo, done, started, start_method, what, *,
 
     def take():
         with lock:
-            return queue.pop() if queue and not failure else None
+            if not queue or failure:
+                return None
+            if refresh is not None:
+                refresh(queue[::-1])
+            return queue.pop()
 
     def finish(i, r):
         with lock:
@@ -731,7 +878,7 @@ def _run_pool(n_proc, task, todo, done, started, start_method, what, *,
 
     def submit_more(live):
         while len(live) < n_pool and (i := take()) is not None:
-            live[pool.submit(_worker_task, i)] = i
+            live[pool.submit(_worker_task, i, None if payload is None else payload(i))] = i
 
     def feed(live):
         try:
@@ -777,7 +924,7 @@ def _run_pool(n_proc, task, todo, done, started, start_method, what, *,
     pool.shutdown(wait=True)
 
 
-def _run_dask(client, forest, plan, todo, model, run, cosmo, done) -> None:
+def _run_dask(client, forest, plan, todo, model, run, cosmo, done, refresh=None) -> None:
     from dask.distributed import as_completed
 
     window = 2 * dask_slots(client)    # sub-forests in flight (bounds the parent's memory)
@@ -789,9 +936,14 @@ def _run_dask(client, forest, plan, todo, model, run, cosmo, done) -> None:
         return client.submit(_dask_chunk, i, sub, model, run, cosmo, pure=False,
                              key=f"bhgrow-chunk-{i:05d}-{token}")
 
+    def next_index():
+        if refresh is not None:
+            refresh(queue)
+        return queue.pop(0)
+
     live = {}
     for _ in range(min(window, len(queue))):
-        f = submit(queue.pop(0))
+        f = submit(next_index())
         live[f.key] = f
     ac = as_completed(list(live.values()), loop=client.loop)
     try:
@@ -801,7 +953,7 @@ def _run_dask(client, forest, plan, todo, model, run, cosmo, done) -> None:
             fut.release()
             done(i, r)
             if queue:
-                nxt = submit(queue.pop(0))
+                nxt = submit(next_index())
                 live[nxt.key] = nxt
                 ac.add(nxt)
     except BaseException as exc:

@@ -93,8 +93,11 @@ def run_model(forest: "Forest | HDF5Forests", config: Config | None = None, *,
     """Run the engine over a forest (in chunks of whole forests) and collect the results.
 
     Chunks are planned by cost, largest first (:func:`bhgrow.parallel.plan_chunks`) and run
-    here, in local worker processes or on Dask; the results are the same, bit for bit, for
-    any plan, worker count and backend, and for trees in memory or read chunk by chunk.
+    here, in local worker processes or on Dask; with several workers the chunks not yet
+    started are re-planned by the time per node measured on the finished ones
+    (:class:`bhgrow.parallel.CostRefiner`; ``plan_refinements`` in the provenance). The
+    results are the same, bit for bit, for any plan, worker count and backend, and for trees
+    in memory or read chunk by chunk.
 
     Parameters
     ----------
@@ -137,12 +140,16 @@ def run_model(forest: "Forest | HDF5Forests", config: Config | None = None, *,
         # chunk is read from one stretch of the file
         contiguous = isinstance(forest, HDF5Forests) and forest.grouped
 
-        def planner(ids):
+        def nodes_of(ids):
+            return npf[np.searchsorted(forest.forest_ids, ids)]
+
+        def planner(ids, weights_of=None, n_chunks=None):
             if contiguous:
                 ids = forest.in_file_order(ids)
-            return par.plan_chunks(npf[np.searchsorted(forest.forest_ids, ids)],
-                                   config.run.chunk_nodes, slots, forest_ids=ids,
-                                   contiguous=contiguous)
+            return par.plan_chunks(nodes_of(ids), config.run.chunk_nodes, slots,
+                                   forest_ids=ids, contiguous=contiguous,
+                                   weights=None if weights_of is None else weights_of(ids),
+                                   n_chunks=n_chunks)
 
         plan = planner(forest.forest_ids)
         ckpt = None
@@ -152,9 +159,12 @@ def run_model(forest: "Forest | HDF5Forests", config: Config | None = None, *,
                                        trees_sha256=par.forest_sha256(forest), resume=resume,
                                        replan=planner)
             plan = ckpt.plan
+        # chunks not yet started are re-planned by the time per node measured on the
+        # finished ones (the first plan goes by node count)
+        refiner = par.CostRefiner(nodes_of, planner) if slots > 1 else None
         results = par.run_chunks(forest, plan, config.model, config.run, cosmo,
                                  workers=workers, client=client, checkpoint=ckpt,
-                                 progress=progress)
+                                 progress=progress, refiner=refiner)
     finally:
         if owned:
             client.close()
@@ -226,6 +236,7 @@ def run_model(forest: "Forest | HDF5Forests", config: Config | None = None, *,
             "n_chunks": len(plan), "backend": ("dask" if client is not None else
                                                  "processes" if slots > 1 else "serial"),
             "workers": slots, "n_chunks_resumed": ckpt.n_reused if ckpt else 0,
+            "plan_refinements": refiner.n_replans if refiner is not None else 0,
             "wall_time_s": wall,
             "nodes_per_s": forest.n_nodes / wall if wall > 0 else None,
             "n_black_holes": len(bh), "seeds_per_channel": n_seeds,

@@ -97,6 +97,20 @@ def test_plan_properties(costs, max_nodes, n_workers):
         assert load <= max_nodes or c.size == 1               # only a giant exceeds the cap
 
 
+@settings(max_examples=60, deadline=None)
+@given(st.lists(st.tuples(st.integers(0, 500), st.floats(0.01, 100.0)), min_size=1,
+                max_size=80), st.integers(1, 900), st.integers(1, 6), st.booleans())
+def test_weighted_plan_properties(forests, max_nodes, n_workers, contiguous):
+    nodes = np.array([f[0] for f in forests])
+    w = np.array([f[1] for f in forests])
+    plan = plan_chunks(nodes, max_nodes, n_workers, weights=w, contiguous=contiguous)
+    assert np.array_equal(np.sort(np.concatenate(plan)), np.arange(nodes.size))
+    loads = [float((nodes[c] * w[c]).sum()) for c in plan]
+    assert loads == sorted(loads, reverse=True)               # largest first
+    for c in plan:
+        assert nodes[c].sum() <= max_nodes or c.size == 1     # only a giant exceeds the cap
+
+
 def test_plan_rejects_bad_arguments():
     with pytest.raises(BhgrowInputError):
         plan_chunks([1, 2], 0)
@@ -105,6 +119,98 @@ def test_plan_rejects_bad_arguments():
     with pytest.raises(BhgrowInputError):
         plan_chunks([1, 2], 10, forest_ids=[1])
     assert plan_chunks([], 10) == []
+
+
+def test_plan_weights_balance_cost_and_cap_nodes():
+    # forests 0-9 cost 4x per node what forests 10-19 do: a node-count plan gives one
+    # chunk all the dear forests; the weighted plan balances the cost, and max_nodes
+    # still caps the nodes of every chunk
+    nodes = np.full(20, 100)
+    w = np.r_[np.full(10, 4.0), np.ones(10)]
+    for contiguous in (False, True):
+        plan = plan_chunks(nodes, 1500, 2, weights=w, contiguous=contiguous)
+        cost = [float((nodes[c] * w[c]).sum()) for c in plan]
+        assert len(plan) == 2 and np.array_equal(np.sort(np.concatenate(plan)),
+                                                 np.arange(20))
+        # list-scheduling bound (Graham 1969): max load <= mean + largest job
+        assert max(cost) <= sum(cost) / 2 + 400
+        assert all(nodes[c].sum() <= 1500 for c in plan)
+        tight = plan_chunks(nodes, 1000, 2, weights=w, contiguous=contiguous)
+        assert all(nodes[c].sum() <= 1000 for c in tight)
+        naive = plan_chunks(nodes, 1000, 2, contiguous=True)
+        assert max(float((nodes[c] * w[c]).sum()) for c in naive) == 4000   # all dear ones
+    # unit weights give the node-count plan; n_chunks sets the count
+    assert all(np.array_equal(a, b) for a, b in zip(plan_chunks(nodes, 1000, 2),
+                                                    plan_chunks(nodes, 1000, 2,
+                                                                weights=np.ones(20))))
+    assert len(plan_chunks(nodes, 1000, 2, n_chunks=6)) == 6
+    with pytest.raises(BhgrowInputError, match="weights"):
+        plan_chunks(nodes, 1000, 2, weights=np.zeros(20))
+    with pytest.raises(BhgrowInputError, match="n_chunks"):
+        plan_chunks(nodes, 1000, 2, n_chunks=0)
+
+
+def _refiner(nodes):
+    from bhgrow.parallel import CostRefiner
+
+    ids = np.arange(nodes.size)
+
+    def planner(sel, weights_of=None, n_chunks=None):
+        return plan_chunks(nodes[sel], 10**9, 2, forest_ids=sel,
+                           weights=None if weights_of is None else weights_of(sel),
+                           n_chunks=n_chunks)
+
+    return CostRefiner(lambda sel: nodes[np.asarray(sel)], planner), ids
+
+
+def test_cost_refiner_recovers_rates_of_a_consistent_system():
+    # closed-form check: chunk times made exactly from two class rates (forests of 10 and
+    # of 1500 nodes: size classes 3 and 10); with chunks of independent composition the
+    # non-negative least-squares fit is the exact solution
+    nodes = np.r_[np.full(30, 10), np.full(6, 1500)]
+    ref, _ = _refiner(nodes)
+    rate = {3: 2.0e-6, 10: 5.0e-7}
+    for chunk in ([0, 1, 2, 30], [3, 4, 31, 32, 33], list(range(5, 25)) + [34],
+                  list(range(25, 30))):
+        n = nodes[chunk]
+        t = sum(rate[int(k)] * m for k, m in zip(ref.size_class(n), n))
+        ref.add(chunk, t)
+    r = ref.rates()
+    assert r[3] == pytest.approx(2.0e-6, rel=1e-3) and r[10] == pytest.approx(5.0e-7,
+                                                                               rel=1e-3)
+    w = ref.weights([0, 35])
+    assert w[0] / w[1] == pytest.approx(4.0, rel=1e-3)
+
+
+def test_cost_refiner_one_chunk_keeps_the_node_count_plan():
+    nodes = np.r_[np.full(30, 10), np.full(6, 1500)]
+    ref, ids = _refiner(nodes)
+    assert ref.rates() is None and np.all(ref.weights(ids) == 1.0)
+    ref.add([0, 1, 30], 0.01)
+    assert np.allclose(ref.rates(), 0.01 / 1520)              # the mean rate everywhere
+    plan = plan_chunks(nodes, 10**9, 2, n_chunks=4)
+    again = [c.copy() for c in plan]
+    assert ref.replan(again, [0, 1, 2, 3])
+    assert all(np.array_equal(a, b) for a, b in zip(plan, again))
+
+
+def test_cost_refiner_replan_schedule_and_invariants():
+    nodes = np.r_[np.full(40, 10), np.full(8, 1500)]
+    ref, ids = _refiner(nodes)
+    plan = plan_chunks(nodes, 10**9, 2, n_chunks=8)
+    assert not ref.replan(plan, [2, 3, 4])                    # nothing measured yet
+    ref.add(plan[0], 1e-3)
+    ref.add(plan[1], 5e-3)
+    assert ref.replan(plan, [2, 3, 4])
+    assert not ref.replan(plan, [2, 3, 4])                    # no new measurement
+    ref.add(plan[2], 1e-3)
+    assert not ref.replan(plan, [3, 4])                       # 3 measured: not doubled
+    ref.add(plan[3], 1e-3)
+    assert not ref.replan(plan, [4])                          # one chunk left
+    assert ref.replan(plan, [4, 5])
+    assert ref.n_replans == 2
+    assert np.array_equal(np.sort(np.concatenate(plan)), ids)  # every forest once
+    assert len(plan) == 8
 
 
 # ------------------------------------------------------------------ local workers
@@ -132,6 +238,24 @@ def test_worker_chunks_saved_by_the_workers_are_complete(sub, reference, tmp_pat
     manifest = json.loads((d / "manifest.json").read_text())
     assert len(list((d / "chunks").glob("chunk-*.pkl"))) == manifest["n_chunks"] > 2
     assert not list((d / "chunks").glob(".*"))                # no temporary files left
+
+
+def test_refined_plan_gives_the_same_results_and_a_matching_checkpoint(sub, reference,
+                                                                     tmp_path):
+    # with two workers the chunks not yet started are re-planned by measured time per
+    # node; results stay the same, and the manifest holds the plan the chunks ran with
+    cfg = from_table({"run": {**FAST, "chunk_nodes": 3000}})
+    d = tmp_path / "run.partial"
+    two = run_model(sub, cfg, workers=2, checkpoint_dir=d)
+    assert two.provenance["plan_refinements"] >= 1
+    assert_same(reference, two)
+    manifest = json.loads((d / "manifest.json").read_text())
+    plan = [np.asarray(c, dtype=np.int64) for c in manifest["chunks"]]
+    assert np.array_equal(np.sort(np.concatenate(plan)), np.sort(sub.forest_ids))
+    ck = Checkpoint.open(d, plan, config_sha256=manifest["config_sha256"],
+                         trees_sha256=manifest["trees_sha256"], resume=True)
+    assert ck.n_reused == len(plan)                     # every chunk file matches its entry
+    assert run_model(sub, cfg, workers=1).provenance["plan_refinements"] == 0
 
 
 def test_workers_option_validation(capsys):
