@@ -24,6 +24,8 @@ import os
 import re
 import shutil
 import sys
+import weakref
+from collections.abc import Mapping
 from pathlib import Path
 
 import numpy as np
@@ -198,6 +200,147 @@ def _float64_strs(a: np.ndarray) -> list:
 
 #: gzip level of the history datasets (h5py's default for compression="gzip")
 HISTORIES_GZIP_LEVEL = 4
+#: rows of a history column read back from a HistoryStore at a time (~16 MB of float64)
+HISTORY_BLOCK_ROWS = 2_000_000
+
+
+#: history columns, in file order
+HISTORY_COLUMNS = ("bh_id", "t_gyr", "z", "mass_msun", "mdot_msun_yr", "eddington_ratio",
+                   "host_gas_msun")
+
+
+def _remove_tree(path: str, pid: int) -> None:
+    """Remove ``path`` if this is process ``pid`` (not a forked copy that inherited it)."""
+    if os.getpid() == pid:
+        shutil.rmtree(path, ignore_errors=True)
+
+
+class HistoryStore(Mapping):
+    """Per-black-hole histories of a run kept on disk, one part per chunk, until written.
+
+    A chunk's histories are moved here as soon as the chunk is done (:meth:`add`), so a
+    run holds at most the chunks in flight in memory, not every history row of the run
+    (~21 bytes per tree node for the default model; the catalogues, ~10 bytes per node,
+    stay in memory). Every black hole's rows are in one chunk (chunks hold whole forests),
+    so the run's order, by ``bh_id`` then time, is the parts' black holes in ``bh_id``
+    order: only the ids, row counts and last masses of the black holes are kept in memory.
+
+    As a mapping (column name -> array in the run's order) it reads the columns back
+    whole; :func:`write_histories` reads them block by block instead, and
+    :meth:`most_massive` reads only the rows of a few black holes. The directory is
+    removed when the store is garbage-collected or the interpreter exits.
+
+    Parameters
+    ----------
+    directory : path-like
+        An empty or missing directory for the parts (created).
+    """
+
+    def __init__(self, directory):
+        self.directory = Path(directory)
+        self.directory.mkdir(parents=True, exist_ok=True)
+        self._parts = []              # per part: (directory, n_rows)
+        self._ids, self._counts, self._last_mass, self._part = [], [], [], []
+        self._order = None
+        weakref.finalize(self, _remove_tree, str(self.directory), os.getpid())
+
+    def add(self, cols: dict) -> None:
+        """Move one chunk's columns (sorted by ``bh_id`` then time) to disk."""
+        ids = np.asarray(cols["bh_id"])
+        if not ids.size:
+            return
+        part = self.directory / f"part-{len(self._parts):05d}"
+        part.mkdir()
+        for name in HISTORY_COLUMNS:
+            np.save(part / f"{name}.npy", np.asarray(cols[name]), allow_pickle=False)
+        uniq, start = np.unique(ids, return_index=True)
+        stop = np.r_[start[1:], ids.size]
+        self._ids.append(uniq)
+        self._counts.append(stop - start)
+        self._last_mass.append(np.asarray(cols["mass_msun"])[stop - 1])
+        self._part.append(np.full(uniq.size, len(self._parts), dtype=np.int32))
+        self._parts.append((part, ids.size))
+        self._order = None
+
+    def _index(self):
+        """Black holes in the run's order: ids, part, first row in the part, row count."""
+        if self._order is None:
+            # no rows: float ids, as the columns of an empty run in memory have
+            ids = np.concatenate(self._ids) if self._ids else np.zeros(0)
+            counts = (np.concatenate(self._counts) if self._counts
+                      else np.zeros(0, np.int64))
+            starts = np.concatenate([np.r_[0, np.cumsum(c)[:-1]] for c in self._counts]) \
+                if self._counts else np.zeros(0, np.int64)
+            part = np.concatenate(self._part) if self._part else np.zeros(0, np.int32)
+            o = np.argsort(ids, kind="stable")
+            self._order = (ids[o], part[o], starts[o], counts[o], o)
+        return self._order
+
+    @property
+    def n_rows(self) -> int:
+        return int(sum(n for _, n in self._parts))
+
+    def index(self):
+        """``/index`` of the histories file: every black hole's id and first row, and the
+        number of rows at the end."""
+        ids, _, _, counts, _ = self._index()
+        return ids, np.r_[0, np.cumsum(counts)].astype(np.int64)
+
+    def _rows(self, sel, name):
+        """Rows of the black holes at positions ``sel`` (of the run's order) of column
+        ``name``, in the run's order."""
+        _, part, starts, counts, _ = self._index()
+        part, starts, counts = part[sel], starts[sel], counts[sel]
+        n = int(counts.sum())
+        out = np.empty(n, dtype=self._dtype(name))
+        first = np.r_[0, np.cumsum(counts)[:-1]]
+        # row of the part for every output row: its black hole's first row + rank
+        local = np.repeat(starts - first, counts) + np.arange(n)
+        owner = np.repeat(part, counts)
+        for p in np.unique(part):
+            at = np.flatnonzero(owner == p)
+            col = np.load(self._parts[p][0] / f"{name}.npy", mmap_mode="r")
+            out[at] = col[local[at]]
+            del col
+        return out
+
+    def _dtype(self, name):
+        return np.load(self._parts[0][0] / f"{name}.npy", mmap_mode="r").dtype \
+            if self._parts else np.float64
+
+    def blocks(self, name, max_rows: int):
+        """Column ``name`` in the run's order as consecutive arrays of whole black holes,
+        each of at most ``max_rows`` rows where a black hole has fewer (memory: one
+        block)."""
+        _, _, _, counts, _ = self._index()
+        ends = np.cumsum(counts)
+        lo = 0
+        while lo < counts.size:
+            base = ends[lo - 1] if lo else 0
+            hi = max(lo + 1, int(np.searchsorted(ends, base + max_rows, side="right")))
+            yield self._rows(slice(lo, hi), name)
+            lo = hi
+
+    def most_massive(self, n: int) -> dict:
+        """The histories (columns in the run's order) of the ``n`` black holes with the
+        largest last mass, as :func:`bhgrow.plots.mass_histories` picks them."""
+        ids, _, _, _, o = self._index()
+        last = np.concatenate(self._last_mass)[o] if self._last_mass else np.zeros(0)
+        sel = np.sort(np.argsort(last)[::-1][:n])
+        return {name: self._rows(sel, name) for name in HISTORY_COLUMNS}
+
+    def __getitem__(self, name):
+        if name not in HISTORY_COLUMNS:
+            raise KeyError(name)
+        if not self._parts:
+            return np.zeros(0)
+        return self._rows(slice(None), name)
+
+    def __iter__(self):
+        return iter(HISTORY_COLUMNS)
+
+    def __len__(self):
+        return len(HISTORY_COLUMNS)
 
 
 def write_histories(cols: dict, path: Path, *, threads: int | None = None) -> None:
@@ -212,8 +355,9 @@ def write_histories(cols: dict, path: Path, *, threads: int | None = None) -> No
 
     Parameters
     ----------
-    cols : dict
-        Column name -> 1-d array, one row per (black hole, snapshot), sorted by ``bh_id``.
+    cols : dict or HistoryStore
+        Column name -> 1-d array, one row per (black hole, snapshot), sorted by ``bh_id``;
+        or a :class:`HistoryStore`, read back in blocks (the same file).
     path : path-like
         File to write.
     threads : int, optional
@@ -231,6 +375,9 @@ def write_histories(cols: dict, path: Path, *, threads: int | None = None) -> No
         with h5py.File(path, "w") as h5:
             h5.attrs["format"] = "bhgrow-histories"
             h5.attrs["schema_version"] = 1
+            if isinstance(cols, HistoryStore):
+                _write_store(h5, cols, units, threads)
+                return
             for name, arr in cols.items():
                 arr = np.asarray(arr)
                 if _direct_chunks_ok(arr):
@@ -254,6 +401,49 @@ def write_histories(cols: dict, path: Path, *, threads: int | None = None) -> No
             pool.shutdown()
 
 
+def _write_store(h5, store: HistoryStore, units: dict, threads: int) -> None:
+    """The datasets of :func:`write_histories` from a :class:`HistoryStore`, column by
+    column in blocks of whole HDF5 chunks (the same file as from the columns in memory)."""
+    n = store.n_rows
+    pool = None
+    try:
+        for name in HISTORY_COLUMNS:
+            dtype = store._dtype(name)
+            if not n:
+                ds = h5.create_dataset(name, data=np.zeros(0, dtype), compression="gzip",
+                                       shuffle=True)
+                ds.attrs["unit"] = units.get(name, "")
+                continue
+            ds = h5.create_dataset(name, shape=(n,), dtype=dtype, compression="gzip",
+                                   shuffle=True)
+            if threads > 1 and pool is None:
+                from concurrent.futures import ThreadPoolExecutor
+
+                pool = ThreadPoolExecutor(threads)
+            size = ds.chunks[0]
+            # blocks of whole black holes are cut at whole HDF5 chunks; the rows after the
+            # last whole chunk wait for the next block
+            carry = np.zeros(0, dtype)
+            written = 0
+            for block in store.blocks(name, max(size, HISTORY_BLOCK_ROWS)):
+                arr = np.concatenate([carry, block]) if carry.size else block
+                whole = arr.size - arr.size % size
+                if whole:
+                    _write_deflated_chunks(ds, arr[:whole], pool, threads, offset=written)
+                    written += whole
+                carry = arr[whole:]
+            if carry.size:
+                _write_deflated_chunks(ds, carry, pool, threads, offset=written)
+            ds.attrs["unit"] = units.get(name, "")
+        ids, offset = store.index()
+        g = h5.create_group("index")
+        g.create_dataset("bh_id", data=ids)
+        g.create_dataset("offset", data=offset)
+    finally:
+        if pool is not None:
+            pool.shutdown()
+
+
 def _direct_chunks_ok(arr: np.ndarray) -> bool:
     """Whether :func:`_write_deflated_chunks` can store ``arr`` (1-d, non-empty, native
     integer or float: types whose HDF5 storage is the array's bytes)."""
@@ -261,8 +451,10 @@ def _direct_chunks_ok(arr: np.ndarray) -> bool:
             and arr.dtype.isnative)
 
 
-def _write_deflated_chunks(ds, arr: np.ndarray, pool, threads: int = 1) -> None:
-    """Fill the 1-d chunked dataset ``ds`` (shuffle + gzip filters) with ``arr``.
+def _write_deflated_chunks(ds, arr: np.ndarray, pool, threads: int = 1,
+                           offset: int = 0) -> None:
+    """Fill the 1-d chunked dataset ``ds`` (shuffle + gzip filters) with ``arr``, from row
+    ``offset`` (a multiple of the chunk size) on.
 
     The chunks are compressed in ``pool`` (``threads`` threads; here if None) as HDF5's
     filters would: the last chunk is padded with the fill value 0 to the full chunk size,
@@ -286,7 +478,7 @@ def _write_deflated_chunks(ds, arr: np.ndarray, pool, threads: int = 1) -> None:
     starts = range(0, arr.size, size)
     if pool is None:
         for start in starts:
-            ds.id.write_direct_chunk((start,), deflate(start))
+            ds.id.write_direct_chunk((offset + start,), deflate(start))
         return
     window = 4 * max(1, threads)
     ahead = deque()
@@ -295,10 +487,10 @@ def _write_deflated_chunks(ds, arr: np.ndarray, pool, threads: int = 1) -> None:
             ahead.append((start, pool.submit(deflate, start)))
             if len(ahead) >= window:
                 done, fut = ahead.popleft()
-                ds.id.write_direct_chunk((done,), fut.result())
+                ds.id.write_direct_chunk((offset + done,), fut.result())
         while ahead:
             done, fut = ahead.popleft()
-            ds.id.write_direct_chunk((done,), fut.result())
+            ds.id.write_direct_chunk((offset + done,), fut.result())
     finally:
         for _, fut in ahead:        # after an error: drop the chunks not yet started
             fut.cancel()

@@ -686,7 +686,8 @@ def dask_slots(client) -> int:
 
 def run_chunks(forest, plan: list, model, run, cosmo, *, workers: int = 1, client=None,
                checkpoint: Checkpoint | None = None, progress: bool = False,
-               start_method: str | None = None, refiner: CostRefiner | None = None) -> list:
+               start_method: str | None = None, refiner: CostRefiner | None = None,
+               on_result=None) -> list:
     """Run every chunk of ``plan``; the EngineResults in plan order.
 
     Parameters
@@ -716,6 +717,10 @@ def run_chunks(forest, plan: list, model, run, cosmo, *, workers: int = 1, clien
         before a chunk is handed out the chunks not yet started are re-planned by the
         measured time per node (``plan`` is changed in place, and the checkpoint's
         manifest rewritten). Results do not depend on the plan.
+    on_result : callable, optional
+        ``on_result(i, result) -> result`` for each chunk as it arrives (also for those
+        reused from the checkpoint), in this process; what it returns is kept (the
+        pipeline moves the chunk's histories to disk there).
 
     Returns
     -------
@@ -733,7 +738,7 @@ def run_chunks(forest, plan: list, model, run, cosmo, *, workers: int = 1, clien
     results: list = [None] * len(plan)
     if checkpoint is not None:
         for i, r in checkpoint.load_finished().items():
-            results[i] = r
+            results[i] = r if on_result is None else on_result(i, r)
     todo = [i for i in range(len(plan)) if results[i] is None]
     n_proc = min(n_local_workers(workers), len(todo))
     bars = []
@@ -748,7 +753,7 @@ def run_chunks(forest, plan: list, model, run, cosmo, *, workers: int = 1, clien
             r = checkpoint.load(i)
         elif checkpoint is not None and not saved:
             checkpoint.save(i, r)
-        results[i] = r
+        results[i] = r if on_result is None else on_result(i, r)
         if refiner is not None:
             refiner.add(plan[i], r.chunk_s)
         open_bar()

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import math
 import shutil
+import tempfile
 import time
 from dataclasses import dataclass
 from pathlib import Path
@@ -15,7 +16,8 @@ from .config import Config, load_config, write_toml
 from .cosmology import Cosmology
 from .engine import CHANNEL_NAMES, SINKING, STATUS_NAMES, BlackHoles
 from .errors import BhgrowInputError
-from .output import RunDirectory, file_sha256, write_ecsv, write_histories, write_json
+from .output import (HISTORY_COLUMNS, HistoryStore, RunDirectory, file_sha256, write_ecsv,
+                     write_histories, write_json)
 from .trees.forest import Forest
 from .trees.io import HDF5Forests, is_hdf5_path, load_forest, open_forests
 
@@ -36,7 +38,7 @@ class RunResult:
     """Everything a run produced, in memory."""
 
     black_holes: "object"        # astropy Table
-    histories: dict              # column arrays
+    histories: "Mapping"         # column arrays (dict), or a HistoryStore on disk
     ledger: dict
     baryons: dict
     n_seeds: dict
@@ -58,6 +60,17 @@ def _merge(parts: list) -> BlackHoles:
     return out
 
 
+def _take_history(result) -> list:
+    """The columns of a chunk result's histories (sorted by bh_id, t_gyr); the result gives
+    them up."""
+    from .engine import History
+
+    hist, result.history = result.history, History()
+    # one part of whole columns: a compacted chunk (per-snapshot parts hold scalars)
+    single = len(hist.parts) == 1 and np.ndim(hist.parts[0][1]) == 1
+    return list(hist.parts[0] if single else hist.columns().values())
+
+
 def _merge_histories(results: list) -> dict:
     """The chunks' histories as one set of columns sorted by (bh_id, t_gyr).
 
@@ -66,14 +79,7 @@ def _merge_histories(results: list) -> dict:
     """
     from .engine import History
 
-    parts = []
-    for r in results:
-        hist, r.history = r.history, History()
-        # one part of whole columns: a compacted chunk (per-snapshot parts hold scalars)
-        single = len(hist.parts) == 1 and np.ndim(hist.parts[0][1]) == 1
-        cols = hist.parts[0] if single else tuple(hist.columns().values())
-        parts.append(list(cols))
-        del hist, cols
+    parts = [_take_history(r) for r in results]
     names = list(History().columns())
     order = np.lexsort((np.concatenate([p[1] for p in parts]),
                         np.concatenate([p[0] for p in parts])))
@@ -97,7 +103,10 @@ def run_model(forest: "Forest | HDF5Forests", config: Config | None = None, *,
     started are re-planned by the time per node measured on the finished ones
     (:class:`bhgrow.parallel.CostRefiner`; ``plan_refinements`` in the provenance). The
     results are the same, bit for bit, for any plan, worker count and backend, and for trees
-    in memory or read chunk by chunk.
+    in memory or read chunk by chunk. With several chunks, the histories are moved to disk
+    chunk by chunk (``histories`` of the result is then a
+    :class:`bhgrow.output.HistoryStore`: a mapping of column name to array, read back on
+    access); with one chunk they are a dict of arrays.
 
     Parameters
     ----------
@@ -162,14 +171,30 @@ def run_model(forest: "Forest | HDF5Forests", config: Config | None = None, *,
         # chunks not yet started are re-planned by the time per node measured on the
         # finished ones (the first plan goes by node count)
         refiner = par.CostRefiner(nodes_of, planner) if slots > 1 else None
+        # with several chunks, each chunk's histories go to disk as soon as it is done
+        # (HistoryStore), so they are never all in memory; one chunk keeps them in memory
+        # (beside the checkpoint, on the output's file system: a temporary directory may be
+        # in memory; not inside it: the result outlives the checkpoint)
+        store = None
+        if config.run.histories and len(plan) > 1:
+            where = Path(checkpoint_dir) if checkpoint_dir is not None else None
+            store = HistoryStore(tempfile.mkdtemp(
+                prefix=f".{where.name}-histories-" if where else "bhgrow-histories-",
+                dir=where.parent if where else None))
+
+        def spill(i, r):
+            store.add(dict(zip(HISTORY_COLUMNS, _take_history(r))))
+            return r
+
         results = par.run_chunks(forest, plan, config.model, config.run, cosmo,
                                  workers=workers, client=client, checkpoint=ckpt,
-                                 progress=progress, refiner=refiner)
+                                 progress=progress, refiner=refiner,
+                                 on_result=spill if store is not None else None)
     finally:
         if owned:
             client.close()
     bh = _merge([r.black_holes for r in results])
-    hist = _merge_histories(results)
+    hist = store if store is not None else _merge_histories(results)
     o = np.argsort(bh.bh_id, kind="stable")
     weights = forest.volume_weight() if (forest.forest_weight is not None
                                          or forest.box_mpc is not None) else None

@@ -76,7 +76,11 @@ def _save(fig, path) -> Path:
     return path
 
 
-def mass_histories(hist: dict, path, *, n: int = 24, seed_channels: dict | None = None,
+#: black holes in the mass-history figure
+N_HISTORIES = 24
+
+
+def mass_histories(hist: dict, path, *, n: int = N_HISTORIES, seed_channels: dict | None = None,
                    title: str = "") -> Path:
     """Mass against redshift for up to ``n`` black holes (the most massive at the end)."""
     fig, ax = _subplots()

@@ -17,6 +17,7 @@ from . import __version__, _validate
 from . import gw as gwmod
 from . import plots
 from .errors import BhgrowInputError
+from .output import HistoryStore
 from .tables import build_tables, write_tables
 
 #: measured nHz background amplitude at f = 1/yr reported by NANOGrav from its 15-year data
@@ -148,11 +149,14 @@ def make_figures(tables: dict, mergers, histories, black_holes, gws: dict, setti
     """Every figure of a run (PNG)."""
     fig_dir.mkdir(exist_ok=True)
     out = []
+    if isinstance(histories, HistoryStore):
+        # on disk: read back only the rows of the black holes the figure shows
+        histories = histories.most_massive(plots.N_HISTORIES)
     if histories is not None and len(histories.get("bh_id", [])):
         chans = dict(zip(np.asarray(black_holes["bh_id"]).tolist(),
                          np.asarray(black_holes["seed_channel"]).tolist()))
         out.append(plots.mass_histories(histories, fig_dir / "mass_histories.png",
-                                        seed_channels=chans))
+                                        n=plots.N_HISTORIES, seed_channels=chans))
     # merger rate vs z per seed channel of the pair (both the same channel, or "mixed")
     t = tables["observed_merger_rate"]
     rates = {"all": (np.asarray(t["rate_density_mpc3_gyr"]),

@@ -272,3 +272,78 @@ def test_shared_mathtext_parser_changes_no_pixel(tmp_path, monkeypatch):
     assert shared.shape == own.shape == (round(4.4 * plots.DPI), round(6.4 * plots.DPI), 4)
     np.testing.assert_array_equal(shared, own)
     assert not list(tmp_path.glob(".*.tmp-*"))
+
+
+# ------------------------------------------------------------------ histories kept on disk
+def store_columns(n_bh: int = 700, seed: int = 3) -> dict:
+    """History columns of the run's layout (sorted by bh_id), with float32 in one column."""
+    cols = history_columns(n_bh, seed)
+    return {k: cols[k] for k in output.HISTORY_COLUMNS}
+
+
+def split_by_black_hole(cols: dict, n_parts: int, seed: int = 5) -> list:
+    """The rows of ``cols`` in ``n_parts`` parts of whole black holes, their ids
+    interleaved between parts (as chunks of a file not ordered by node id give them)."""
+    ids = cols["bh_id"]
+    uniq = np.unique(ids)
+    owner = dict(zip(uniq.tolist(), np.random.default_rng(seed).integers(0, n_parts,
+                                                                         uniq.size).tolist()))
+    part = np.array([owner[i] for i in ids.tolist()])
+    return [{k: v[part == p] for k, v in cols.items()} for p in range(n_parts)]
+
+
+@pytest.mark.parametrize("block_rows", [1, 37, 100_000])
+def test_history_store_gives_the_columns_and_file_of_one_write(tmp_path, monkeypatch,
+                                                               block_rows):
+    # the rows of several chunks, moved to disk part by part, come back in the run's order
+    # and make the same histories file, chunk for chunk, as the columns in memory; blocks
+    # smaller than an HDF5 chunk (1, 37) carry rows over, 100000 holds the whole column
+    monkeypatch.setattr(output, "HISTORY_BLOCK_ROWS", block_rows)
+    cols = store_columns()
+    store = output.HistoryStore(tmp_path / "store")
+    for part in split_by_black_hole(cols, 4):
+        store.add(part)
+    store.add({k: v[:0] for k, v in cols.items()})          # a chunk without black holes
+    assert store.n_rows == cols["bh_id"].size
+    assert list(store) == list(output.HISTORY_COLUMNS)
+    for k, v in cols.items():
+        got = store[k]
+        assert got.dtype == v.dtype, k
+        np.testing.assert_array_equal(got, v, k)
+    write_histories(cols, tmp_path / "memory.h5", threads=2)
+    write_histories(store, tmp_path / "store.h5", threads=2)
+    assert_same_histories(tmp_path / "memory.h5", tmp_path / "store.h5",
+                          raw_chunks=hdf5_deflate_is_pythons(tmp_path))
+    with h5py.File(tmp_path / "store.h5") as h5:
+        assert h5["mass_msun"].shape[0] > 3 * h5["mass_msun"].chunks[0]   # several chunks
+
+
+def test_history_store_most_massive_are_the_figures_black_holes(tmp_path):
+    cols = store_columns(300)
+    store = output.HistoryStore(tmp_path / "store")
+    for part in split_by_black_hole(cols, 3):
+        store.add(part)
+    ids = cols["bh_id"]
+    uniq, start = np.unique(ids, return_index=True)
+    last = cols["mass_msun"][np.r_[start[1:], ids.size] - 1]
+    top = uniq[np.argsort(last)[::-1][:7]]
+    got = store.most_massive(7)
+    keep = np.isin(ids, top)
+    for k, v in cols.items():
+        np.testing.assert_array_equal(got[k], v[keep], k)
+
+
+def test_history_store_empty_and_removed_when_dropped(tmp_path):
+    import gc
+
+    cols = {k: v[:0] for k, v in store_columns(5).items()}
+    store = output.HistoryStore(tmp_path / "store")
+    store.add(cols)
+    write_histories(store, tmp_path / "store.h5")
+    write_reference({k: np.zeros(0) for k in cols}, tmp_path / "ref.h5")
+    assert_same_histories(tmp_path / "ref.h5", tmp_path / "store.h5", raw_chunks=False)
+    store.add(store_columns(5))
+    assert (tmp_path / "store").is_dir()
+    del store
+    gc.collect()
+    assert not (tmp_path / "store").exists()
