@@ -355,6 +355,20 @@ def _eddington_end(g0, m0, c: Coefficients, t):
     nxt = np.where(np.isfinite(ref) & (ref > 0.0), ref, nxt)
     newton = -(g0 - mid) / (c.inflow - a * g0 - drain + b * star)
     nxt = np.where(np.isfinite(nxt) & (nxt > 0.0), nxt, newton)
+    # The gas of the phase is exactly g = I/a + C e^{-as} - K e^{bs} (K = P e M0 / (a + b),
+    # C = g0 - I/a + K). Below its quasi-static path (C < 0, the gas still rising towards
+    # it while the hole's drain grows as e^{bs}), f = g - g* is concave: start where the
+    # quasi-static gas meets the band, I/a - K w - mid / w = 0 (w = e^{bs}, the larger
+    # root), which lies beyond the root, so Newton converges from there without
+    # overshooting. The guesses above assume a slowly growing drain and were off by up
+    # to 5x there (~10 iterations for such a root; measured on the toy forests).
+    k_q = drain / (a + b)
+    q = c.inflow / a
+    below = (g0 - q + k_q < 0.0) & (a > 0.0)
+    if below.any():
+        w = (q + np.sqrt(q * q - 4.0 * k_q * mid)) / (2.0 * k_q)
+        quasi = np.log(w) / b
+        nxt = np.where(below & np.isfinite(quasi) & (quasi > 0.0), quasi, nxt)
     s0 = np.where((nxt > lo) & (nxt < t), nxt, 0.5 * t)
     return _newton(_eddington_end_fdf, lo, t.copy(),
                    (g0, m0, c.inflow, c.loss, b, pe, star), s0)

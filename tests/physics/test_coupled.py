@@ -571,3 +571,58 @@ def test_ledger_small_reservoir_big_hole():
     # mass conservation of the reservoir (ledger of the module docstring)
     res = r.gas[0] - (thr - r.accreted[0] - r.feedback[0])
     assert abs(res) <= 1e-9 * thr
+
+
+def test_eddington_end_first_band_crossing_of_the_closed_form():
+    # The end of an Eddington phase that cannot last t: the first s where the gas falls into
+    # the band [(1 - tol), 1] x e / (B M(s)) (tol 1e-3), M(s) = M0 e^{bs}. Checked against
+    # the exact gas of the phase derived here by variation of constants, for
+    # dg/ds = I - a g - P e M0 e^{bs}: g(s) = I/a + C e^{-as} - K e^{bs} with
+    # K = P e M0 / (a + b), C = g0 - I/a + K; both signs of C (gas below its quasi-static
+    # path, rising towards it while the drain grows, and above it, relaxing down), drains
+    # that outgrow the inflow within t, and reservoirs starting just inside the band.
+    from bhgrow.physics.coupled import _EDD_TOL, _eddington_end
+
+    rng = np.random.default_rng(12)
+    n = 4000
+    a = 10 ** rng.uniform(-1, 2, n)
+    b = KEEP * EDD * np.ones(n)
+    m0 = 10 ** rng.uniform(4, 9, n)
+    per_unit = 10 ** rng.uniform(0, 2.5, n)
+    drain = per_unit * EDD * m0
+    inflow = drain * 10 ** rng.uniform(-1, 1.5, n)
+    # the band's upper edge at s = 0 is e / (B M0); start at it times 1 to 30
+    star_hi = 10 ** rng.uniform(4, 10, n)
+    bondi = EDD / (star_hi * m0)
+    g0 = star_hi * np.where(rng.random(n) < 0.2, 1.0 + 1e-4 * rng.random(n),
+                            10 ** rng.uniform(0, 1.5, n))
+    t = 10 ** rng.uniform(-2.5, 0, n)
+    k_q = drain / (a + b)
+    q = inflow / a
+
+    def gas(s):
+        return q + (g0 - q + k_q) * np.exp(-a * s) - k_q * np.exp(b * s)
+
+    def band_low(s):          # (1 - tol) e / (B M(s))
+        return (1.0 - _EDD_TOL) * star_hi * np.exp(-b * s)
+
+    ends = gas(t) < band_low(t)           # phases that cannot last t
+    assert 1000 < ends.sum() < n and ((g0 - q + k_q)[ends] < 0).sum() > 200
+    i = np.flatnonzero(ends)
+    c = Coefficients(inflow=inflow[i], loss=a[i], lock=0.1 * a[i], metal_rate=0.0 * a[i],
+                     bondi_per_gas=bondi[i], edd=EDD * np.ones(i.size), keep=KEEP * np.ones(
+                         i.size), per_unit=per_unit[i])
+    with np.errstate(all="ignore"):
+        s = _eddington_end(g0[i], m0[i], c, t[i])
+    # keep the helpers' arrays aligned with the phases that end
+    a, b, g0, q, k_q, star_hi, t = (x[i] for x in (a, b, g0, q, k_q, star_hi, t))
+    g_s = gas(s)
+    low = band_low(s)
+    assert np.all((s >= 0) & (s <= t))
+    # inside the band, within round-off of the gas's terms
+    scale = np.abs(q) + np.abs(g0 - q + k_q) + k_q * np.exp(b * s)
+    assert np.all(g_s >= low - 1e-12 * scale)
+    assert np.all(g_s <= low / (1.0 - _EDD_TOL) + 1e-12 * scale)
+    # and the first crossing: above the band's lower edge everywhere before s
+    u = np.linspace(0.0, 1.0, 201)[1:-1, None] * s
+    assert np.all(gas(u) >= band_low(u) - 1e-12 * scale)
