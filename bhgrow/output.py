@@ -241,6 +241,7 @@ class HistoryStore(Mapping):
         self.directory.mkdir(parents=True, exist_ok=True)
         self._parts = []              # per part: (directory, n_rows)
         self._ids, self._counts, self._last_mass, self._part = [], [], [], []
+        self._z = []                  # per part: its snapshots' redshifts
         self._order = None
         weakref.finalize(self, _remove_tree, str(self.directory), os.getpid())
 
@@ -259,6 +260,7 @@ class HistoryStore(Mapping):
         self._counts.append(stop - start)
         self._last_mass.append(np.asarray(cols["mass_msun"])[stop - 1])
         self._part.append(np.full(uniq.size, len(self._parts), dtype=np.int32))
+        self._z.append(np.unique(np.asarray(cols["z"])))
         self._parts.append((part, ids.size))
         self._order = None
 
@@ -328,6 +330,42 @@ class HistoryStore(Mapping):
         last = np.concatenate(self._last_mass)[o] if self._last_mass else np.zeros(0)
         sel = np.sort(np.argsort(last)[::-1][:n])
         return {name: self._rows(sel, name) for name in HISTORY_COLUMNS}
+
+    def snapshot_z(self) -> np.ndarray:
+        """The redshifts of the snapshots that have rows (sorted, unique)."""
+        return np.unique(np.concatenate(self._z)) if self._z else np.zeros(0)
+
+    def at_redshifts(self, z_values, names=HISTORY_COLUMNS) -> dict:
+        """Columns ``names`` of the rows whose ``z`` is one of ``z_values`` (snapshot
+        redshifts, compared exactly), in the run's order: what the tables of a few
+        snapshots need, without reading the rest of the rows into memory."""
+        ids, part, starts, counts, o = self._index()
+        # the run-order position of each part's black holes, and of their first rows
+        rank = np.empty(o.size, dtype=np.int64)
+        rank[o] = np.arange(o.size)
+        first_out = np.r_[0, np.cumsum(counts)[:-1]]
+        zs = np.asarray(z_values, dtype=float)
+        pos, vals, base = [], {n: [] for n in names}, 0
+        for p, (d, n_rows) in enumerate(self._parts):
+            n_bh = self._counts[p].size
+            z = np.load(d / "z.npy", mmap_mode="r")
+            local = np.flatnonzero(np.isin(z, zs))
+            del z
+            if local.size:
+                # each row's black hole within the part, its run-order rank, and its rank
+                # among that black hole's rows
+                bh = np.repeat(np.arange(n_bh), self._counts[p])[local]
+                start_in_part = np.r_[0, np.cumsum(self._counts[p])[:-1]][bh]
+                pos.append(first_out[rank[base + bh]] + (local - start_in_part))
+                for name in names:
+                    col = np.load(d / f"{name}.npy", mmap_mode="r")
+                    vals[name].append(np.asarray(col[local]))
+                    del col
+            base += n_bh
+        if not pos:
+            return {name: np.zeros(0, self._dtype(name)) for name in names}
+        order = np.argsort(np.concatenate(pos), kind="stable")
+        return {name: np.concatenate(v)[order] for name, v in vals.items()}
 
     def __getitem__(self, name):
         if name not in HISTORY_COLUMNS:

@@ -74,6 +74,8 @@ _BH_COLUMNS = ("bh_id", "seed_channel", "final_mass_msun", "status", "final_z",
 _MERGER_COLUMNS = ("z", "q", "chirp_mass_msun", "weight_mpc3", "seed_channel_1",
                    "seed_channel_2")
 _HISTORY_COLUMNS = ("bh_id", "z", "mass_msun", "eddington_ratio")
+#: the history columns :func:`build_tables` reads
+TABLE_HISTORY_COLUMNS = _HISTORY_COLUMNS
 
 _RATE_UNIT = "Mpc-3 Gyr-1"
 _DEX_UNIT = "Mpc-3 dex-1"
@@ -299,6 +301,15 @@ def _weights(col, ids, source: str) -> np.ndarray:
 
 def _strings(col) -> np.ndarray:
     return np.asarray(col).astype(str)
+
+
+def history_redshifts(z_snap, binning: Binning) -> np.ndarray:
+    """The snapshot redshifts (of ``z_snap``) whose history rows :func:`build_tables` uses:
+    those nearest each redshift of ``binning.mass_function_z`` and ``eddington_z``."""
+    z_snap = np.unique(np.asarray(z_snap, dtype=float))
+    near = _nearest_snapshots(z_snap, list(binning.mass_function_z)
+                              + list(binning.eddington_z))
+    return np.unique([z for z in near if not math.isnan(z)])
 
 
 def _nearest_snapshots(z_snap: np.ndarray, wanted) -> list:

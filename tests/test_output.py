@@ -347,3 +347,21 @@ def test_history_store_empty_and_removed_when_dropped(tmp_path):
     del store
     gc.collect()
     assert not (tmp_path / "store").exists()
+
+
+def test_history_store_rows_at_chosen_snapshots(tmp_path):
+    # what the tables read: the rows of a few snapshots, in the run's order, the same as
+    # filtering the columns in memory
+    cols = store_columns(400, seed=8)
+    store = output.HistoryStore(tmp_path / "store")
+    for part in split_by_black_hole(cols, 3, seed=9):
+        store.add(part)
+    np.testing.assert_array_equal(store.snapshot_z(), np.unique(cols["z"]))
+    chosen = np.unique(cols["z"])[[0, 7, 21]]
+    got = store.at_redshifts(chosen, ("bh_id", "z", "mass_msun"))
+    keep = np.isin(cols["z"], chosen)
+    assert 0 < keep.sum() < keep.size
+    for k in ("bh_id", "z", "mass_msun"):
+        np.testing.assert_array_equal(got[k], cols[k][keep], k)
+    none = store.at_redshifts([-1.0], ("bh_id", "eddington_ratio"))
+    assert none["bh_id"].size == 0 and none["eddington_ratio"].dtype == np.float32

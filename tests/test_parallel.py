@@ -255,6 +255,13 @@ def test_histories_of_several_chunks_are_kept_on_disk(sub, reference, tmp_path):
         for name in ("index/bh_id", "index/offset", *one.histories):
             assert a[name].dtype == b[name].dtype, name
             assert a[name][()].tobytes() == b[name][()].tobytes(), name
+    # the tables read only the rows of the snapshots they use from the store: the same
+    # files as from the columns in memory
+    names = sorted(p.name for p in (tmp_path / "one" / "tables").iterdir())
+    assert {"bh_mass_function.ecsv", "eddington_ratio_distribution.ecsv"} <= set(names)
+    for name in [f"tables/{n}" for n in names] + ["summary.json"]:
+        assert (tmp_path / "one" / name).read_bytes() == \
+            (tmp_path / "many" / name).read_bytes(), name
     directory = store.directory
     del many, store
     gc.collect()
