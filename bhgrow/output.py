@@ -215,7 +215,30 @@ def _remove_tree(path: str, pid: int) -> None:
         shutil.rmtree(path, ignore_errors=True)
 
 
-class HistoryStore(Mapping):
+class OnDiskHistories(Mapping):
+    """Histories on disk, read back in parts (:class:`HistoryStore`, :class:`HistoryFile`).
+
+    As a mapping (column name -> array in the run's order, by ``bh_id`` then time) a column
+    is read back whole; the products read only what they use: :meth:`at_redshifts` (the
+    tables: the rows of a few snapshots) and :meth:`most_massive` (the figure).
+    """
+
+    def snapshot_z(self) -> np.ndarray:
+        """The redshifts of the snapshots that have rows (sorted, unique)."""
+        raise NotImplementedError
+
+    def at_redshifts(self, z_values, names=HISTORY_COLUMNS) -> dict:
+        """Columns ``names`` of the rows whose ``z`` is one of ``z_values`` (snapshot
+        redshifts, compared exactly), in the run's order."""
+        raise NotImplementedError
+
+    def most_massive(self, n: int) -> dict:
+        """The histories (columns in the run's order) of the ``n`` black holes with the
+        largest last mass, as :func:`bhgrow.plots.mass_histories` picks them."""
+        raise NotImplementedError
+
+
+class HistoryStore(OnDiskHistories):
     """Per-black-hole histories of a run kept on disk, one part per chunk, until written.
 
     A chunk's histories are moved here as soon as the chunk is done (:meth:`add`), so a
@@ -324,21 +347,15 @@ class HistoryStore(Mapping):
             lo = hi
 
     def most_massive(self, n: int) -> dict:
-        """The histories (columns in the run's order) of the ``n`` black holes with the
-        largest last mass, as :func:`bhgrow.plots.mass_histories` picks them."""
         ids, _, _, _, o = self._index()
         last = np.concatenate(self._last_mass)[o] if self._last_mass else np.zeros(0)
         sel = np.sort(np.argsort(last)[::-1][:n])
         return {name: self._rows(sel, name) for name in HISTORY_COLUMNS}
 
     def snapshot_z(self) -> np.ndarray:
-        """The redshifts of the snapshots that have rows (sorted, unique)."""
         return np.unique(np.concatenate(self._z)) if self._z else np.zeros(0)
 
     def at_redshifts(self, z_values, names=HISTORY_COLUMNS) -> dict:
-        """Columns ``names`` of the rows whose ``z`` is one of ``z_values`` (snapshot
-        redshifts, compared exactly), in the run's order: what the tables of a few
-        snapshots need, without reading the rest of the rows into memory."""
         ids, part, starts, counts, o = self._index()
         # the run-order position of each part's black holes, and of their first rows
         rank = np.empty(o.size, dtype=np.int64)
@@ -543,6 +560,107 @@ def write_json(obj: dict, path: Path) -> None:
         raise TypeError(type(o))
 
     path.write_text(json.dumps(obj, indent=2, default=plain, sort_keys=False) + "\n")
+
+
+class HistoryFile(OnDiskHistories):
+    """The histories of a run directory's ``histories.h5``, read in blocks (memory: one
+    block of :data:`HISTORY_BLOCK_ROWS` rows, and one value per black hole).
+
+    Parameters
+    ----------
+    path : path-like
+        A file written by :func:`write_histories`.
+    required : sequence of str
+        Datasets that must be present (checked at once, with their lengths).
+
+    Raises
+    ------
+    BhgrowInputError
+        The file is missing, not HDF5, lacks a required dataset, or its datasets differ in
+        length.
+    """
+
+    def __init__(self, path, required=HISTORY_COLUMNS):
+        import h5py
+
+        self.path = Path(path)
+        if not self.path.exists():
+            raise BhgrowInputError(f"{self.path}: missing", source=str(self.path),
+                                   rule="no_file")
+        try:
+            with h5py.File(self.path, "r") as h5:
+                # the run's column order (HDF5 lists names alphabetically)
+                self._names = tuple(sorted(
+                    (k for k in h5 if k != "index"),
+                    key=lambda k: (HISTORY_COLUMNS.index(k) if k in HISTORY_COLUMNS
+                                   else len(HISTORY_COLUMNS), k)))
+                missing = [c for c in required if c not in h5]
+                sizes = {k: h5[k].shape[0] if h5[k].ndim else 0 for k in self._names}
+        except OSError as exc:
+            raise BhgrowInputError(f"{self.path}: not a readable HDF5 file ({exc})",
+                                   source=str(self.path), rule="not_hdf5") from None
+        if missing:
+            raise BhgrowInputError(f"{self.path}: missing dataset(s) {', '.join(missing)}",
+                                   source=str(self.path), rule="missing_columns")
+        if len(set(sizes.values())) > 1:
+            raise BhgrowInputError(f"{self.path}: datasets differ in length {sizes}",
+                                   source=str(self.path), rule="bad_file")
+        self.n_rows = next(iter(sizes.values()), 0)
+
+    def _open(self):
+        import h5py
+
+        return h5py.File(self.path, "r")
+
+    def _blocks(self, h5, name):
+        ds = h5[name]
+        for lo in range(0, self.n_rows, HISTORY_BLOCK_ROWS):
+            yield lo, ds[lo:lo + HISTORY_BLOCK_ROWS]
+
+    def snapshot_z(self) -> np.ndarray:
+        with self._open() as h5:
+            found = [np.unique(z) for _, z in self._blocks(h5, "z")]
+        return np.unique(np.concatenate(found)) if found else np.zeros(0)
+
+    def at_redshifts(self, z_values, names=HISTORY_COLUMNS) -> dict:
+        zs = np.asarray(z_values, dtype=float)
+        with self._open() as h5:
+            at = [(lo, np.flatnonzero(np.isin(z, zs))) for lo, z in self._blocks(h5, "z")]
+            out = {}
+            for name in names:
+                ds = h5[name]
+                parts = [ds[lo:lo + HISTORY_BLOCK_ROWS][sel] for lo, sel in at if sel.size]
+                out[name] = np.concatenate(parts) if parts else np.zeros(0, ds.dtype)
+        return out
+
+    def most_massive(self, n: int) -> dict:
+        with self._open() as h5:
+            if "index" in h5:
+                offset = h5["index/offset"][()]
+            else:     # a file without the index: the black holes' first rows from bh_id
+                ids = h5["bh_id"][()]
+                offset = np.r_[np.unique(ids, return_index=True)[1], ids.size]
+            last_row = offset[1:] - 1
+            last = np.empty(last_row.size)
+            for lo, mass in self._blocks(h5, "mass_msun"):     # last_row is sorted
+                a, b = np.searchsorted(last_row, (lo, lo + mass.size))
+                last[a:b] = mass[last_row[a:b] - lo]
+            sel = np.sort(np.argsort(last)[::-1][:n])
+            return {name: (np.concatenate([h5[name][offset[j]:offset[j + 1]] for j in sel])
+                           if sel.size else np.zeros(0, h5[name].dtype))
+                    for name in self._names}
+
+    def __getitem__(self, name):
+        if name not in self._names:
+            raise KeyError(name)
+        with self._open() as h5:
+            return h5[name][()]
+
+    def __iter__(self):
+        return iter(self._names)
+
+    def __len__(self):
+        return len(self._names)
 
 
 def read_histories(path) -> dict:

@@ -17,7 +17,7 @@ from . import __version__, _validate
 from . import gw as gwmod
 from . import plots
 from .errors import BhgrowInputError
-from .output import HistoryStore
+from .output import HistoryFile, OnDiskHistories
 from .tables import TABLE_HISTORY_COLUMNS, build_tables, history_redshifts, write_tables
 
 #: measured nHz background amplitude at f = 1/yr reported by NANOGrav from its 15-year data
@@ -149,7 +149,7 @@ def make_figures(tables: dict, mergers, histories, black_holes, gws: dict, setti
     """Every figure of a run (PNG)."""
     fig_dir.mkdir(exist_ok=True)
     out = []
-    if isinstance(histories, HistoryStore):
+    if isinstance(histories, OnDiskHistories):
         # on disk: read back only the rows of the black holes the figure shows
         histories = histories.most_massive(plots.N_HISTORIES)
     if histories is not None and len(histories.get("bh_id", [])):
@@ -239,7 +239,7 @@ def make_products(result, config, cosmo, run_dir: Path, *, name: str | None = No
     settings = config.gw
     hist = result.histories if config.run.histories else None
     hist_rows = hist
-    if isinstance(hist, HistoryStore):
+    if isinstance(hist, OnDiskHistories):
         # on disk: only the rows of the snapshots the tables use are read back
         hist_rows = hist.at_redshifts(history_redshifts(hist.snapshot_z(), config.binning),
                                       TABLE_HISTORY_COLUMNS)
@@ -284,7 +284,6 @@ def products_from_run(run_dir, config=None) -> dict:
 
     from .config import load_config
     from .cosmology import Cosmology
-    from .output import read_histories
 
     run_dir = Path(run_dir)
     if not (run_dir / "run.json").exists():
@@ -298,7 +297,8 @@ def products_from_run(run_dir, config=None) -> dict:
                                    rule="no_file")
     bh = Table.read(run_dir / "black_holes.ecsv")
     mergers = Table.read(run_dir / "mergers.ecsv")
-    hist = read_histories(run_dir / "histories.h5") if cfg.run.histories else {}
+    # read in blocks: only the rows the tables and the figure use are held in memory
+    hist = HistoryFile(run_dir / "histories.h5") if cfg.run.histories else {}
     cosmo = Cosmology.from_name(cfg.run.cosmology)
     n_seeds = prov.get("seeds_per_channel", {})
     res = SimpleNamespace(black_holes=bh, mergers=mergers, histories=hist, provenance=prov,

@@ -807,24 +807,13 @@ def _read_ecsv(path: Path, columns) -> object:
     return table
 
 
-def _read_histories(path: Path) -> dict:
-    import h5py
+def _read_histories(path: Path, binning: Binning) -> dict:
+    """The rows of ``histories.h5`` that :func:`build_tables` uses (the snapshots nearest the
+    binning's redshifts), read in blocks."""
+    from .output import HistoryFile
 
-    try:
-        with h5py.File(path, "r") as h5:
-            missing = [c for c in _HISTORY_COLUMNS if c not in h5]
-            if missing:
-                raise BhgrowInputError(f"{path}: missing dataset(s) {', '.join(missing)}",
-                                       source=str(path), rule="missing_columns")
-            cols = {c: h5[c][()] for c in _HISTORY_COLUMNS}
-    except OSError as exc:
-        raise BhgrowInputError(f"{path}: not a readable HDF5 file ({exc})", source=str(path),
-                               rule="bad_file") from None
-    sizes = {c: np.asarray(v).size for c, v in cols.items()}
-    if len(set(sizes.values())) != 1:
-        raise BhgrowInputError(f"{path}: datasets differ in length {sizes}", source=str(path),
-                               rule="bad_file")
-    return cols
+    hist = HistoryFile(path, required=_HISTORY_COLUMNS)
+    return hist.at_redshifts(history_redshifts(hist.snapshot_z(), binning), _HISTORY_COLUMNS)
 
 
 def tables_from_run(run_dir, binning: Binning | None = None) -> dict:
@@ -882,7 +871,7 @@ def tables_from_run(run_dir, binning: Binning | None = None) -> dict:
     mergers = _read_ecsv(run_dir / "mergers.ecsv", _MERGER_COLUMNS)
     hist_path = run_dir / "histories.h5"
     if hist_path.is_file():
-        histories = _read_histories(hist_path)
+        histories = _read_histories(hist_path, binning or Binning())
     elif config is not None and not config.run.histories:
         histories = None
     else:

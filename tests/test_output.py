@@ -365,3 +365,47 @@ def test_history_store_rows_at_chosen_snapshots(tmp_path):
         np.testing.assert_array_equal(got[k], cols[k][keep], k)
     none = store.at_redshifts([-1.0], ("bh_id", "eddington_ratio"))
     assert none["bh_id"].size == 0 and none["eddington_ratio"].dtype == np.float32
+
+
+@pytest.mark.parametrize("block_rows", [37, 100_000])
+def test_history_file_reads_what_the_products_use(tmp_path, monkeypatch, block_rows):
+    # histories.h5 read in blocks (bhgrow tables RUN_DIR): the rows of chosen snapshots,
+    # the figure's black holes and whole columns, as from the columns in memory
+    monkeypatch.setattr(output, "HISTORY_BLOCK_ROWS", block_rows)
+    cols = store_columns(300, seed=4)
+    write_histories(cols, tmp_path / "h.h5", threads=1)
+    f = output.HistoryFile(tmp_path / "h.h5")
+    assert f.n_rows == cols["bh_id"].size and list(f) == list(output.HISTORY_COLUMNS)
+    np.testing.assert_array_equal(f.snapshot_z(), np.unique(cols["z"]))
+    chosen = np.unique(cols["z"])[[2, 30]]
+    keep = np.isin(cols["z"], chosen)
+    got = f.at_redshifts(chosen, ("bh_id", "eddington_ratio"))
+    for k in ("bh_id", "eddington_ratio"):
+        np.testing.assert_array_equal(got[k], cols[k][keep], k)
+    store = output.HistoryStore(tmp_path / "store")
+    store.add(cols)
+    top_store, top_file = store.most_massive(5), f.most_massive(5)
+    for k, v in cols.items():
+        np.testing.assert_array_equal(top_file[k], top_store[k], k)
+        np.testing.assert_array_equal(f[k], v, k)
+
+
+def test_history_file_bad_input(tmp_path):
+    from bhgrow.errors import BhgrowInputError
+
+    with pytest.raises(BhgrowInputError, match="missing") as exc:
+        output.HistoryFile(tmp_path / "none.h5")
+    assert exc.value.rule == "no_file"
+    (tmp_path / "text.h5").write_text("not hdf5\n")
+    with pytest.raises(BhgrowInputError, match="not a readable HDF5 file"):
+        output.HistoryFile(tmp_path / "text.h5")
+    cols = store_columns(20)
+    write_histories(cols, tmp_path / "h.h5", threads=1)
+    with h5py.File(tmp_path / "h.h5", "a") as h5:
+        del h5["z"]
+    with pytest.raises(BhgrowInputError, match=r"h\.h5: missing dataset\(s\) z"):
+        output.HistoryFile(tmp_path / "h.h5")
+    with h5py.File(tmp_path / "h.h5", "a") as h5:
+        h5["z"] = np.zeros(3)
+    with pytest.raises(BhgrowInputError, match="datasets differ in length"):
+        output.HistoryFile(tmp_path / "h.h5")
