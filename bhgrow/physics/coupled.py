@@ -71,6 +71,8 @@ _MAX_PHASES = 6
 #: most safeguarded Newton iterations for a phase switch (usually 2-4 suffice; each
 #: bisection fallback halves the bracket)
 _ROOT_ITERS = 60
+#: Newton steps on a root's cheap closed form before the safeguarded iteration (:func:`_polish`)
+_POLISH_STEPS = 3
 _SERIES_X = 0.05
 #: a reservoir feeding at least (1 - _EDD_TOL) of the Eddington rate counts as Eddington-fed:
 #: the phase switches, which are found by root finding, then land on the right side
@@ -333,6 +335,25 @@ def _newton(fdf, lo, hi, args, s0):
     return out
 
 
+def _polish(fdf, s0, lo, hi, valid):
+    """:data:`_POLISH_STEPS` Newton steps on a cheap closed form of a decreasing ``f``
+    (``fdf(s) -> (f, f')``), bracketed by ``lo, hi``, for every element at once (no
+    compaction, no acceptance test: :func:`_newton` follows with the exact ``f``, so this
+    only improves its first point). Where a step leaves the bracket, bisection; where
+    ``valid`` is false, ``s0`` is kept."""
+    s, lo, hi = s0.copy(), lo.copy(), hi.copy()
+    for _ in range(_POLISH_STEPS):
+        f, df = fdf(s)
+        up = f >= 0.0
+        np.copyto(lo, s, where=up)
+        np.copyto(hi, s, where=~up)
+        nxt = s - f / df
+        # the ends count as inside: a converged point whose step is below round-off
+        # stays put (no acceptance test here to stop it)
+        s = np.where((nxt >= lo) & (nxt <= hi), nxt, 0.5 * (lo + hi))
+    return np.where(valid & np.isfinite(s), s, s0)
+
+
 def _eddington_end(g0, m0, c: Coefficients, t):
     """End of an Eddington phase that cannot last ``t``: where the gas falls to
     ``(1 - tol) e / (B M)`` (:data:`_EDD_TOL`), i.e. the reservoir no longer feeds ``e M``."""
@@ -370,6 +391,17 @@ def _eddington_end(g0, m0, c: Coefficients, t):
         quasi = np.log(w) / b
         nxt = np.where(below & np.isfinite(quasi) & (quasi > 0.0), quasi, nxt)
     s0 = np.where((nxt > lo) & (nxt < t), nxt, 0.5 * t)
+
+    # then Newton steps on that closed form, aimed at the band's middle, mid e^{-bs} (the
+    # exact f, with phi-functions that keep it accurate for small a s, decides after)
+    cq = g0 - q + k_q
+
+    def cheap(u):
+        e_a, e_b = np.exp(-a * u), np.exp(b * u)
+        return (q + cq * e_a - k_q * e_b - mid / e_b,
+                -a * cq * e_a - b * k_q * e_b + b * mid / e_b)
+
+    s0 = _polish(cheap, s0, lo, t, a > 0.0)
     return _newton(_eddington_end_fdf, lo, t.copy(),
                    (g0, m0, c.inflow, c.loss, b, pe, star), s0)
 
@@ -413,6 +445,19 @@ def _bondi_runaway(g0, m0, c: Coefficients, t, mbar, g_t, gi_t):
     # phase the caller computed); measured to save ~35% of the evaluations
     f_lo, f_hi = e_b * inv_m0 - g0, e_b * (inv_m0 - kb * gi_t) - g_t
     s0 = t * np.clip(f_lo / (f_lo - f_hi), 0.0, 1.0)
+    # then Newton steps on the closed form of the phase, g = g_eq + D e^{-lam s},
+    # int g = g_eq s + D (1 - e^{-lam s}) / lam, aimed at the band's middle
+    g_eq = c.inflow / lam
+    d = g0 - g_eq
+    h = (1.0 - 0.5 * _EDD_TOL / (1.0 + _EDD_TOL)) * e_b
+
+    def cheap(u):
+        e = np.exp(-lam * u)
+        g = g_eq + d * e
+        return (h * (inv_m0 - kb * (g_eq * u + d * (1.0 - e) / lam)) - g,
+                -h * kb * g + lam * d * e)
+
+    s0 = _polish(cheap, s0, np.zeros_like(t), t, lam > 0.0)
     return _newton(_bondi_runaway_fdf, np.zeros_like(t), t.copy(),
                    (g0, inv_m0, c.inflow, lam, kb, e_b), s0)
 

@@ -626,3 +626,57 @@ def test_eddington_end_first_band_crossing_of_the_closed_form():
     # and the first crossing: above the band's lower edge everywhere before s
     u = np.linspace(0.0, 1.0, 201)[1:-1, None] * s
     assert np.all(gas(u) >= band_low(u) - 1e-12 * scale)
+
+
+def test_bondi_runaway_first_band_crossing_of_the_closed_form():
+    # Where Bondi growth lifts the accretion rate B g M to (1 + tol) e within a phase whose
+    # drain holds the hole at mbar: with lam = a + P B mbar^2 the gas is exactly
+    # g(s) = g_eq + D e^{-lam s} (g_eq = I / lam, D = g0 - g_eq) and Bondi growth (Bondi
+    # 1952) gives 1/M(s) = 1/M0 - k B int g, int g = g_eq s + D (1 - e^{-lam s}) / lam
+    # (both derived here). The root must be the first s with B g M in [1, 1 + tol] e.
+    from bhgrow.physics.coupled import _EDD_TOL, _bondi_runaway
+
+    rng = np.random.default_rng(21)
+    n = 4000
+    a = 10 ** rng.uniform(-1, 2.5, n)
+    m0 = 10 ** rng.uniform(4, 9, n)
+    mbar = m0 * 10 ** rng.uniform(0, 0.2, n)
+    per_unit = 10 ** rng.uniform(0, 2, n)
+    g_star = 10 ** rng.uniform(5, 10, n)          # e / (B M0): the rate reaches e there
+    bondi = EDD / (g_star * m0)
+    g0 = g_star * 10 ** rng.uniform(-3, -0.01, n)  # Bondi-fed at the start
+    lam = a + per_unit * bondi * mbar ** 2
+    inflow = lam * g_star * 10 ** rng.uniform(-0.5, 2, n)
+    t = 10 ** rng.uniform(-3, 0, n)
+    e_b = (1.0 + _EDD_TOL) * EDD / bondi
+    g_eq = inflow / lam
+    d = g0 - g_eq
+
+    def gas(s):
+        return g_eq + d * np.exp(-lam * s)
+
+    def inv_m(s):
+        return 1.0 / m0 - KEEP * bondi * (g_eq * s + d * -np.expm1(-lam * s) / lam)
+
+    def f(s):              # e_b / M - g: > 0 while B g M < (1 + tol) e
+        return e_b * inv_m(s) - gas(s)
+
+    ends = f(t) < 0
+    assert 500 < ends.sum() < n
+    i = np.flatnonzero(ends)
+    c = Coefficients(inflow=inflow[i], loss=a[i], lock=0.1 * a[i], metal_rate=0.0 * a[i],
+                     bondi_per_gas=bondi[i], edd=EDD * np.ones(i.size),
+                     keep=KEEP * np.ones(i.size), per_unit=per_unit[i])
+    ts = t[i]
+    # the gas and its integral at the phase's end, as the caller passes them
+    gt, git = gas(t)[i], ((1.0 / m0 - inv_m(t)) / (KEEP * bondi))[i]
+    with np.errstate(all="ignore"):
+        s = _bondi_runaway(g0[i], m0[i], c, ts, mbar[i], gt, git)
+    e_b, g_eq, d, lam, m0, bondi, g0 = (x[i] for x in (e_b, g_eq, d, lam, m0, bondi, g0))
+    fs = f(s)
+    scale = e_b / m0 + np.abs(g_eq) + np.abs(d)
+    assert np.all((s >= 0) & (s <= ts))
+    assert np.all(fs >= -1e-12 * scale)
+    assert np.all(fs <= _EDD_TOL / (1.0 + _EDD_TOL) * e_b * inv_m(s) + 1e-12 * scale)
+    u = np.linspace(0.0, 1.0, 201)[1:-1, None] * s
+    assert np.all(f(u) >= -1e-12 * scale)
