@@ -68,6 +68,10 @@ from .trees.forest import Forest
 
 STATUS_NAMES = ("central", "sinking", "host_ended", "merged", "ejected", "ejected_triple")
 CENTRAL, SINKING, HOST_ENDED, MERGED, EJECTED, EJECTED_TRIPLE = range(6)
+#: accretion laws nonlinear in the gas: a step's effective gas is solved to this in ln g
+#: (:func:`_nonlinear_step`), in at most this many solver calls
+_NONLINEAR_TOL = 1e-3
+_NONLINEAR_ITERS = 8
 CHANNEL_NAMES = {code: name for name, code in sd.CHANNEL_CODES.items()}
 # purposes of the engine's random draws (seeding uses its own, documented in seeding.py)
 _P_SPIN = 11
@@ -599,10 +603,8 @@ def _grow(model, run, bh, cbh, sl, gas, stars, metals, outflow, inflow, t_dyn,
         h = h_total / n_sub
         for j in range(int(n_sub.max()) if n_sub.size else 0):
             live = np.flatnonzero(n_sub > j)
-            gr = np.where(g[live] > 0, g[live], 1.0)
-            c = coef.take(live)._replace(bondi_per_gas=np.asarray(model.accretion.coefficient(
-                rho_1[live] * gr, cs[live], 0.0), dtype=float) / gr)
-            r = cp.advance(g[live], z[live], m[live], c, h[live])
+            r = _nonlinear_step(model, coef.take(live), g[live], z[live], m[live], h[live],
+                                rho_1[live], cs[live])
             g[live], z[live], m[live] = r.gas, r.metals, r.m_bh
             taken[live] += r.accreted
             formed[live] += r.stars_formed
@@ -615,6 +617,57 @@ def _grow(model, run, bh, cbh, sl, gas, stars, metals, outflow, inflow, t_dyn,
     gas[hl], metals[hl] = g, z
     stars[hl] += formed
     outflow += out.sum()
+
+
+def _nonlinear_step(model, c, g, z, m, h, rho_1, cs):
+    """One step of :func:`bhgrow.physics.coupled.advance` for an accretion law whose
+    coefficient per unit gas depends on the gas (e.g. Booth & Schaye 2009, ``B ~ g^beta``);
+    returns its :class:`~bhgrow.physics.coupled.IntervalResult`.
+
+    The step freezes ``B``; it is taken at an effective gas ``g_e`` equal to the step's
+    own mean gas, ``int g dt / h``, with ``B = A(g_e) / g_e``, so ``B int g dt = A(g_e) h``
+    (the midpoint rule for ``int A(g) dt``). ``g_e`` solves ``ln g_e = ln mean(g_e)``: a
+    fixed-point step from the starting gas, then secant steps (kept within the span of the
+    last two points widened by the same again: the fixed-point map oscillates where the
+    hole's drain dominates), each halo until it is within :data:`_NONLINEAR_TOL` in
+    ``ln g_e`` or after :data:`_NONLINEAR_ITERS` solver calls; one solver call per
+    iteration on the halos not yet converged. Taking ``B`` at the starting gas, as
+    before, is an explicit step on that stiff loop (low gas -> small ``B`` -> the gas
+    overshoots in the step -> large ``B``): on toy forests 1% of central black holes
+    ended > 40% away from a converged run at the default ``substep_dlnm`` (1% with this
+    scheme; measured against ``substep_dlnm = 0.0125``), though the total converged.
+    """
+    out = None
+    x_prev = f_prev = None
+    x = np.log(np.where(g > 0, g, 1.0))
+    todo = np.arange(g.size)
+    for it in range(_NONLINEAR_ITERS):
+        ge = np.exp(x)
+        bpg = np.asarray(model.accretion.coefficient(rho_1[todo] * ge, cs[todo], 0.0),
+                         dtype=float) / ge
+        r = cp.advance(g[todo], z[todo], m[todo], c.take(todo)._replace(bondi_per_gas=bpg),
+                       h[todo])
+        if out is None:
+            out = r
+        else:           # each halo keeps the step at its latest effective gas
+            for full, part in zip(out, r):
+                full[todo] = part
+        ht = h[todo]
+        mean = np.divide(r.gas_integral, ht, out=np.zeros(todo.size), where=ht > 0)
+        f = x - np.log(np.maximum(mean, 1e-300))
+        go = (np.abs(f) > _NONLINEAR_TOL) & (ht > 0) & (mean > 0)
+        if not go.any() or it == _NONLINEAR_ITERS - 1:
+            break
+        if x_prev is None:
+            x_new = x - f                      # the fixed-point step: ln of the mean gas
+        else:
+            x_new = x - f * (x - x_prev) / (f - f_prev)
+            lo, hi = np.minimum(x, x_prev), np.maximum(x, x_prev)
+            span = hi - lo
+            x_new = np.where(np.isfinite(x_new), np.clip(x_new, lo - span, hi + span),
+                             x - f)
+        todo, x_prev, f_prev, x = todo[go], x[go], f[go], x_new[go]
+    return out
 
 
 def _move_black_holes(bh: BlackHoles, in_slice, desc, forest: Forest, k: int,

@@ -77,7 +77,7 @@ def _chains() -> Forest:
     return Forest.from_columns(cols, np.arange(N_SNAP), Z_SNAP, source="chains")
 
 
-def _config(feedback: str, **run):
+def _config(feedback: str, law: str = "bondi_hoyle", **run):
     # one seed of 1e5 Msun in the first node of every chain (all are above 1e6 Msun)
     return from_table({
         "run": {"histories": False, **run},
@@ -85,6 +85,7 @@ def _config(feedback: str, **run):
                     "halo_mass": {"m_halo_min_msun": 1e6,
                                   "mass": {"kind": "fixed", "value": SEED_MSUN}}},
         "feedback": {"mode": feedback},
+        "accretion": {"law": law},
     })
 
 
@@ -165,8 +166,8 @@ def chains():
 
 
 @functools.lru_cache(maxsize=None)
-def _reference(feedback: str, rtol: float = 1e-10) -> np.ndarray:
-    return reference_final_state(_config(feedback), rtol=rtol)
+def _reference(feedback: str, rtol: float = 1e-10, law: str = "bondi_hoyle") -> np.ndarray:
+    return reference_final_state(_config(feedback, law), rtol=rtol)
 
 
 @pytest.fixture(scope="module", params=["none", "energy", "momentum"])
@@ -205,3 +206,25 @@ def test_final_black_hole_mass_matches_reference(compared):
                        for (m0, _), me, mr, d in zip(HALOS, m_engine, m_ref, rel))
     assert np.all(np.abs(rel) < RTOL_ISSUE), f"feedback={mode}: {detail}"
     assert np.all(np.abs(rel) < RTOL_ENGINE), f"feedback={mode}: {detail}"
+
+
+@pytest.mark.parametrize("feedback", ["energy", "momentum"])
+def test_booth_schaye_final_mass_matches_reference(chains, feedback):
+    # An accretion law nonlinear in the gas, Booth & Schaye (2009): A ~ n_H^beta x Bondi,
+    # so the coefficient per unit gas grows as the gas^2 (beta = 2) above n_H* and the
+    # hole's drain feeds back on it within a step. The engine freezes it per step at the
+    # step's self-consistent mean gas; against the same equations in continuous time
+    # (solve_ivp; Virtanen et al. 2020) the final mass must meet the issue's 0.5%.
+    # (Frozen at each step's starting gas, as before, the energy-feedback chains were off
+    # by 0.42-0.90%, the momentum ones by up to 0.06%; now 0.03-0.16% and 0.02%.)
+    cfg = _config(feedback, "booth_schaye")
+    res = run_model(chains, cfg)
+    tab = res.black_holes
+    tab.sort("forest_id")
+    ref = _reference(feedback, law="booth_schaye")
+    m_engine = np.asarray(tab["final_mass_msun"], dtype=float)
+    assert np.all(ref[:, 3] > 5 * SEED_MSUN)
+    # the boost acts: the reference differs from the unboosted law's by more than the bar
+    assert np.max(np.abs(ref[:, 3] / _reference(feedback)[:, 3] - 1.0)) > RTOL_ISSUE
+    rel = m_engine / ref[:, 3] - 1.0
+    assert np.all(np.abs(rel) < RTOL_ISSUE), (feedback, rel)

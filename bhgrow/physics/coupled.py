@@ -134,6 +134,8 @@ class IntervalResult(NamedTuple):
     stars_formed: np.ndarray
     wind: np.ndarray
     feedback: np.ndarray
+    #: time integral of the reservoir gas over the step, Msun Gyr
+    gas_integral: np.ndarray
 
 
 # The helpers below run inside ``advance``/``substeps``, which silence floating-point
@@ -511,7 +513,8 @@ def advance(gas, metals, m_bh, c: Coefficients, dt, n_steps=None,
     -------
     IntervalResult
         Gas, metals and hole mass at the end; gas accreted by the hole, locked into stars,
-        blown out by supernova winds and by feedback over the step (Msun). The hole grows
+        blown out by supernova winds and by feedback over the step (Msun); the time
+        integral of the gas (Msun Gyr). The hole grows
         by ``k accreted``; ``gas_end = gas + I dt - accreted - stars - wind - feedback``.
     """
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
@@ -709,7 +712,7 @@ def _advance(gas, metals, m_bh, c: Coefficients, dt, n_steps, max_dlnm,
     stars = c.lock * gint
     wind = (c.loss - c.lock) * gint
     return IntervalResult(gas=g, metals=z, m_bh=m, accreted=acc, stars_formed=stars,
-                          wind=wind, feedback=(c.per_unit - 1.0) * acc)
+                          wind=wind, feedback=(c.per_unit - 1.0) * acc, gas_integral=gint)
 
 
 def _drain_share(c: Coefficients, pb):
