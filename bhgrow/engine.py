@@ -601,10 +601,14 @@ def _grow(model, run, bh, cbh, sl, gas, stars, metals, outflow, inflow, t_dyn,
         g, z, m = g0.copy(), metals[hl].copy(), m_start.copy()
         taken, formed, out = np.zeros(cbh.size), np.zeros(cbh.size), np.zeros(cbh.size)
         h = h_total / n_sub
+        # ln(effective gas / starting gas) of each halo's last step: the next step starts
+        # its search there
+        shift = np.zeros(cbh.size)
         for j in range(int(n_sub.max()) if n_sub.size else 0):
             live = np.flatnonzero(n_sub > j)
-            r = _nonlinear_step(model, coef.take(live), g[live], z[live], m[live], h[live],
-                                rho_1[live], cs[live])
+            r, shift[live] = _nonlinear_step(model, coef.take(live), g[live], z[live],
+                                             m[live], h[live], rho_1[live], cs[live],
+                                             shift[live])
             g[live], z[live], m[live] = r.gas, r.metals, r.m_bh
             taken[live] += r.accreted
             formed[live] += r.stars_formed
@@ -619,10 +623,12 @@ def _grow(model, run, bh, cbh, sl, gas, stars, metals, outflow, inflow, t_dyn,
     outflow += out.sum()
 
 
-def _nonlinear_step(model, c, g, z, m, h, rho_1, cs):
+def _nonlinear_step(model, c, g, z, m, h, rho_1, cs, shift):
     """One step of :func:`bhgrow.physics.coupled.advance` for an accretion law whose
     coefficient per unit gas depends on the gas (e.g. Booth & Schaye 2009, ``B ~ g^beta``);
-    returns its :class:`~bhgrow.physics.coupled.IntervalResult`.
+    returns its :class:`~bhgrow.physics.coupled.IntervalResult` and each halo's
+    ``ln(g_e / g)``, from which the next step of the interval starts (``shift``: this
+    step's start, 0 for the first).
 
     The step freezes ``B``; it is taken at an effective gas ``g_e`` equal to the step's
     own mean gas, ``int g dt / h``, with ``B = A(g_e) / g_e``, so ``B int g dt = A(g_e) h``
@@ -630,7 +636,9 @@ def _nonlinear_step(model, c, g, z, m, h, rho_1, cs):
     fixed-point step from the starting gas, then secant steps (kept within the span of the
     last two points widened by the same again: the fixed-point map oscillates where the
     hole's drain dominates), each halo until it is within :data:`_NONLINEAR_TOL` in
-    ``ln g_e`` or after :data:`_NONLINEAR_ITERS` solver calls; one solver call per
+    ``ln g_e`` or after :data:`_NONLINEAR_ITERS` solver calls (the search starts at
+    ``ln g + shift``; the first iteration's fixed-point step goes from there); one
+    solver call per
     iteration on the halos not yet converged. Taking ``B`` at the starting gas, as
     before, is an explicit step on that stiff loop (low gas -> small ``B`` -> the gas
     overshoots in the step -> large ``B``): on toy forests 1% of central black holes
@@ -639,7 +647,10 @@ def _nonlinear_step(model, c, g, z, m, h, rho_1, cs):
     """
     out = None
     x_prev = f_prev = None
-    x = np.log(np.where(g > 0, g, 1.0))
+    x_start = np.log(np.where(g > 0, g, 1.0))
+    # (the last step's shift within a factor e^5; e^x always finite)
+    x = np.clip(x_start + np.where(g > 0, np.clip(shift, -5.0, 5.0), 0.0), 0.0, 700.0)
+    x_end = x.copy()
     todo = np.arange(g.size)
     for it in range(_NONLINEAR_ITERS):
         ge = np.exp(x)
@@ -652,9 +663,10 @@ def _nonlinear_step(model, c, g, z, m, h, rho_1, cs):
         else:           # each halo keeps the step at its latest effective gas
             for full, part in zip(out, r):
                 full[todo] = part
+        x_end[todo] = x
         ht = h[todo]
         mean = np.divide(r.gas_integral, ht, out=np.zeros(todo.size), where=ht > 0)
-        f = x - np.log(np.maximum(mean, 1e-300))
+        f = x - np.log(np.maximum(mean, 1.0))
         go = (np.abs(f) > _NONLINEAR_TOL) & (ht > 0) & (mean > 0)
         if not go.any() or it == _NONLINEAR_ITERS - 1:
             break
@@ -666,8 +678,10 @@ def _nonlinear_step(model, c, g, z, m, h, rho_1, cs):
             span = hi - lo
             x_new = np.where(np.isfinite(x_new), np.clip(x_new, lo - span, hi + span),
                              x - f)
-        todo, x_prev, f_prev, x = todo[go], x[go], f[go], x_new[go]
-    return out
+        # (the effective gas kept within [1 Msun, e^700]: the coefficient per unit gas of
+        # a drained reservoir is taken at 1 Msun, as at zero gas)
+        todo, x_prev, f_prev, x = todo[go], x[go], f[go], np.clip(x_new[go], 0.0, 700.0)
+    return out, x_end - x_start
 
 
 def _move_black_holes(bh: BlackHoles, in_slice, desc, forest: Forest, k: int,
