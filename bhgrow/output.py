@@ -347,7 +347,7 @@ class HistoryStore(OnDiskHistories):
             lo = hi
 
     def most_massive(self, n: int) -> dict:
-        ids, _, _, _, o = self._index()
+        o = self._index()[4]
         last = np.concatenate(self._last_mass)[o] if self._last_mass else np.zeros(0)
         sel = np.sort(np.argsort(last)[::-1][:n])
         return {name: self._rows(sel, name) for name in HISTORY_COLUMNS}
@@ -356,14 +356,14 @@ class HistoryStore(OnDiskHistories):
         return np.unique(np.concatenate(self._z)) if self._z else np.zeros(0)
 
     def at_redshifts(self, z_values, names=HISTORY_COLUMNS) -> dict:
-        ids, part, starts, counts, o = self._index()
+        _, _, _, counts, o = self._index()
         # the run-order position of each part's black holes, and of their first rows
         rank = np.empty(o.size, dtype=np.int64)
         rank[o] = np.arange(o.size)
         first_out = np.r_[0, np.cumsum(counts)[:-1]]
         zs = np.asarray(z_values, dtype=float)
         pos, vals, base = [], {n: [] for n in names}, 0
-        for p, (d, n_rows) in enumerate(self._parts):
+        for p, (d, _) in enumerate(self._parts):
             n_bh = self._counts[p].size
             z = np.load(d / "z.npy", mmap_mode="r")
             local = np.flatnonzero(np.isin(z, zs))

@@ -6,6 +6,7 @@ import math
 import shutil
 import tempfile
 import time
+from collections.abc import Mapping
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -38,7 +39,7 @@ class RunResult:
     """Everything a run produced, in memory."""
 
     black_holes: "object"        # astropy Table
-    histories: "Mapping"         # column arrays (dict), or a HistoryStore on disk
+    histories: Mapping           # column arrays (dict), or a HistoryStore on disk
     ledger: dict
     baryons: dict
     n_seeds: dict
