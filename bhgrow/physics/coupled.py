@@ -68,8 +68,8 @@ __all__ = ["Coefficients", "IntervalResult", "advance", "substeps"]
 #: phases per halo, beyond two per Bondi step, before the remaining time is taken in one
 #: Bondi phase regardless of further switches (capped at Eddington-limited growth)
 _MAX_PHASES = 6
-#: most safeguarded Newton iterations for a phase switch (usually 2-4 suffice; each
-#: bisection fallback halves the bracket)
+#: most safeguarded Newton iterations for a phase switch (after :func:`_polish` usually
+#: 1-3 suffice; each bisection fallback halves the bracket)
 _ROOT_ITERS = 60
 #: Newton steps on a root's cheap closed form before the safeguarded iteration (:func:`_polish`)
 _POLISH_STEPS = 3
@@ -387,7 +387,8 @@ def _eddington_end(g0, m0, c: Coefficients, t):
     # to 5x there (~10 iterations for such a root; measured on the toy forests).
     k_q = drain / (a + b)
     q = c.inflow / a
-    below = (g0 - q + k_q < 0.0) & (a > 0.0)
+    cq = g0 - q + k_q
+    below = (cq < 0.0) & (a > 0.0)
     if below.any():
         w = (q + np.sqrt(q * q - 4.0 * k_q * mid)) / (2.0 * k_q)
         quasi = np.log(w) / b
@@ -396,8 +397,6 @@ def _eddington_end(g0, m0, c: Coefficients, t):
 
     # then Newton steps on that closed form, aimed at the band's middle, mid e^{-bs} (the
     # exact f, with phi-functions that keep it accurate for small a s, decides after)
-    cq = g0 - q + k_q
-
     def cheap(u):
         e_a, e_b = np.exp(-a * u), np.exp(b * u)
         return (q + cq * e_a - k_q * e_b - mid / e_b,
