@@ -18,7 +18,7 @@ from . import gw as gwmod
 from . import plots
 from .errors import BhgrowInputError
 from .output import HistoryFile, OnDiskHistories
-from .tables import TABLE_HISTORY_COLUMNS, build_tables, history_redshifts, write_tables
+from .tables import build_tables, history_rows, write_tables
 
 #: measured nHz background amplitude at f = 1/yr reported by NANOGrav from its 15-year data
 #: set (Agazie et al. 2023, ApJL 951, L8): 2.4e-15 (memory; median for a -2/3 spectrum)
@@ -241,8 +241,7 @@ def make_products(result, config, cosmo, run_dir: Path, *, name: str | None = No
     hist_rows = hist
     if isinstance(hist, OnDiskHistories):
         # on disk: only the rows of the snapshots the tables use are read back
-        hist_rows = hist.at_redshifts(history_redshifts(hist.snapshot_z(), config.binning),
-                                      TABLE_HISTORY_COLUMNS)
+        hist_rows = history_rows(hist, config.binning)
     tables = build_tables(result.black_holes, result.mergers, hist_rows, cosmo,
                           config.binning, meta={"made_by": f"bhgrow {__version__}"})
     gws = gw_summary(result.mergers, cosmo, settings, config.binning.z_edges)

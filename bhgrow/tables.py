@@ -74,8 +74,6 @@ _BH_COLUMNS = ("bh_id", "seed_channel", "final_mass_msun", "status", "final_z",
 _MERGER_COLUMNS = ("z", "q", "chirp_mass_msun", "weight_mpc3", "seed_channel_1",
                    "seed_channel_2")
 _HISTORY_COLUMNS = ("bh_id", "z", "mass_msun", "eddington_ratio")
-#: the history columns :func:`build_tables` reads
-TABLE_HISTORY_COLUMNS = _HISTORY_COLUMNS
 
 _RATE_UNIT = "Mpc-3 Gyr-1"
 _DEX_UNIT = "Mpc-3 dex-1"
@@ -310,6 +308,14 @@ def history_redshifts(z_snap, binning: Binning) -> np.ndarray:
     near = _nearest_snapshots(z_snap, list(binning.mass_function_z)
                               + list(binning.eddington_z))
     return np.unique([z for z in near if not math.isnan(z)])
+
+
+def history_rows(histories, binning: Binning) -> dict:
+    """The rows of histories on disk (:class:`bhgrow.output.OnDiskHistories`) that
+    :func:`build_tables` uses: its columns at the snapshots of :func:`history_redshifts`
+    (the tables are the same as from all rows)."""
+    return histories.at_redshifts(history_redshifts(histories.snapshot_z(), binning),
+                                  _HISTORY_COLUMNS)
 
 
 def _nearest_snapshots(z_snap: np.ndarray, wanted) -> list:
@@ -812,8 +818,7 @@ def _read_histories(path: Path, binning: Binning) -> dict:
     binning's redshifts), read in blocks."""
     from .output import HistoryFile
 
-    hist = HistoryFile(path, required=_HISTORY_COLUMNS)
-    return hist.at_redshifts(history_redshifts(hist.snapshot_z(), binning), _HISTORY_COLUMNS)
+    return history_rows(HistoryFile(path, required=_HISTORY_COLUMNS), binning)
 
 
 def tables_from_run(run_dir, binning: Binning | None = None) -> dict:
