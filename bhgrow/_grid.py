@@ -19,7 +19,6 @@ References
 from __future__ import annotations
 
 import numpy as np
-from scipy.interpolate import CubicSpline
 
 __all__ = ["UniformCubicSpline", "UniformLinearTable"]
 
@@ -50,6 +49,8 @@ class UniformCubicSpline:
 
     def __init__(self, x0: float, h: float, y: np.ndarray):
         knots = x0 + h * np.arange(y.size)
+        from scipy.interpolate import CubicSpline
+
         coef = CubicSpline(knots, y).c  # shape (4, n-1): highest power first
         self.x0 = float(x0)
         self.h = float(h)

@@ -70,7 +70,6 @@ import difflib
 import math
 
 import numpy as np
-from scipy.interpolate import CubicSpline
 
 from . import _validate
 from ._grid import UniformCubicSpline
@@ -176,6 +175,8 @@ def _build_tables(astro, z_max: float, hubble_time_gyr: float, hubble_dist_mpc: 
     n_inv = x.size
     h_inv = (hi - lo) / (n_inv - 1)
     lt = lo + h_inv * np.arange(n_inv)
+    from scipy.interpolate import CubicSpline
+
     xs = CubicSpline(ln_age_nodes[::-1], x[::-1])(lt)
     for _ in range(3):
         val, slope = t.ln_age.value_and_slope(xs)

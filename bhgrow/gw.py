@@ -109,7 +109,6 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.interpolate import CubicHermiteSpline
 
 from . import _validate
 from .constants import C_CGS, G_CGS, GYR_S, KPC_CM, MPC_KPC, MSUN_G, YR_S
@@ -357,6 +356,8 @@ class _Kernels:
         s_q = noise.sensitivity(fq)
         f_n = np.exp(x)
         s_n = noise.sensitivity(f_n)
+        from scipy.interpolate import CubicHermiteSpline
+
         splines = []
         for p in (-7.0 / 3.0, -4.0 / 3.0):
             part = (fq ** (p + 1.0) / s_q) @ w * (0.5 * h)

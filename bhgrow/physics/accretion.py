@@ -43,7 +43,6 @@ from dataclasses import dataclass
 from typing import ClassVar, NamedTuple
 
 import numpy as np
-from scipy.special import xlogy
 
 from .. import _validate
 from ..constants import G_KPC_KMS2_MSUN, KPC_CM, KPC_PER_KMS_GYR, M_P_G, MSUN_G, T_EDD_GYR
@@ -266,6 +265,8 @@ def bondi_lambda(gamma):
     bhgrow.errors.ParameterError
         If any ``gamma`` lies outside [1, 5/3].
     """
+    from scipy.special import xlogy
+
     g = np.asarray(gamma, dtype=np.float64)
     bad = ~((g >= 1.0) & (g <= 5.0 / 3.0))
     if np.any(bad):

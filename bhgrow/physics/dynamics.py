@@ -53,7 +53,6 @@ from typing import NamedTuple
 
 import numpy as np
 from numpy.polynomial import chebyshev as _cheb
-from scipy import integrate
 
 from .. import _validate
 from .. import rng
@@ -570,6 +569,8 @@ def _enhancement_exact(y0: float) -> float:
     e0 = math.sqrt((1.0 - y0) * (1.0 + y0))
     def phi(e):
         return (1.0 + 121.0 / 304.0 * e * e) ** (1181.0 / 2299.0) / ((1.0 - e) * (1.0 + e)) ** 1.5
+    from scipy import integrate
+
     # I(e0) with the algebraic weight e^(29/19) handled exactly by QUADPACK (QAWS)
     val, _ = integrate.quad(phi, 0.0, e0, weight="alg", wvar=(29.0 / 19.0, 0.0), epsabs=0.0,
                             epsrel=1e-11, limit=500)

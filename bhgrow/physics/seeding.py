@@ -59,7 +59,6 @@ from dataclasses import dataclass, field
 from typing import ClassVar, NamedTuple
 
 import numpy as np
-from scipy.special import ndtri
 
 from .. import _validate
 from .. import rng
@@ -167,6 +166,8 @@ _U_MAX = 1.0 - 2.0**-53     # largest double below 1
 
 def _std_normal(u: np.ndarray) -> np.ndarray:
     """Standard normal deviates from uniforms by the inverse CDF (scipy ``ndtri``)."""
+    from scipy.special import ndtri
+
     return ndtri(np.clip(u, _U_MIN, _U_MAX))
 
 

@@ -77,7 +77,6 @@ import math
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy.special import hyp2f1
 
 from .. import _validate
 from .._grid import UniformLinearTable
@@ -152,6 +151,8 @@ def _j_table(gamma1: float):
     x^2 = s turns the integral into an incomplete beta function, whose hypergeometric form is
     DLMF eq. 8.17.7 (memory)); gamma1 < 1.
     """
+    from scipy.special import hyp2f1
+
     lnu = np.arange(-_J_K, _J_K + 1) / _J_SCALE
     if gamma1 == 0.0:
         return lnu, np.zeros_like(lnu)

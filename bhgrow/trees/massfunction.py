@@ -28,7 +28,6 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy.special import gamma
 
 from .. import _validate
 from ..errors import BhgrowInputError
@@ -88,6 +87,8 @@ def st_normalisation(p: float) -> float:
         1999), so that ``int F dln nu = 1``.
     """
     # A = [1 + 2^-p Gamma(1/2 - p)/sqrt(pi)]^-1 (Sheth & Tormen 1999, MNRAS 308, 119, text)
+    from scipy.special import gamma
+
     return 1.0 / (1.0 + 2.0**-p * gamma(0.5 - p) / math.sqrt(math.pi))
 
 

@@ -88,7 +88,6 @@ import math
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy.interpolate import CubicSpline
 
 from .. import _validate
 from .._grid import UniformCubicSpline
@@ -156,6 +155,8 @@ class _Inverse:
         y = self.y_lo + hy * (np.arange(n) - _PAD)
         xs_nodes, ys_nodes = fwd.x_nodes, fwd.y_nodes
         order = np.argsort(ys_nodes)
+        from scipy.interpolate import CubicSpline
+
         x = CubicSpline(ys_nodes[order], xs_nodes[order])(y)
         for _ in range(3):  # Newton polish on the forward spline
             val, slope = fwd.value_and_slope(x)
