@@ -131,6 +131,11 @@ class BlackHoles:
             buf[n:n + k] = arr
             setattr(self, name, buf[:n + k])
 
+    def trimmed(self) -> "BlackHoles":
+        """A copy holding exactly its rows (none of the growth buffers' spare capacity,
+        which can double the table's memory while a finished chunk waits to be merged)."""
+        return BlackHoles(**{k: np.array(getattr(self, k)) for k in self.__dataclass_fields__})
+
     def __getstate__(self):
         # pickle the columns only, not their spare capacity
         return {k: (np.array(v) if isinstance(v, np.ndarray) else v)

@@ -579,10 +579,12 @@ class _Saved:
 # running chunks
 # ------------------------------------------------------------------------------------------
 def compact_result(result):
-    """An EngineResult fit to ship between processes: no forest, history in one part."""
+    """An EngineResult fit to ship between processes and to wait for merging: no forest,
+    history in one part, black holes without spare capacity."""
     cols = result.history.columns()
     history = engine.History(parts=[tuple(cols.values())])
-    return replace(result, forest=None, history=history)
+    return replace(result, forest=None, history=history,
+                   black_holes=result.black_holes.trimmed())
 
 
 def _sub_forest(forest, ids):

@@ -51,14 +51,34 @@ class RunResult:
 
 
 def _merge(parts: list) -> BlackHoles:
-    """Concatenate chunk tables, sorted by bh_id (unique), so any chunk plan gives one table."""
+    """Concatenate chunk tables, sorted by bh_id (unique), so any chunk plan gives one table.
+
+    Column by column; each part gives up a column once it is copied (the parts are the
+    chunks' results, merged once), so the merge holds little more than the merged table.
+    """
     out = BlackHoles()
-    for p in parts:
-        out.append(**{k: getattr(p, k) for k in out.__dataclass_fields__})
-    o = np.argsort(out.bh_id, kind="stable")
+    if not parts:
+        return out
+    o = np.argsort(np.concatenate([p.bh_id for p in parts]), kind="stable")
     for k in out.__dataclass_fields__:
-        setattr(out, k, getattr(out, k)[o])
+        dtype = getattr(out, k).dtype
+        col = np.concatenate([getattr(p, k) for p in parts]).astype(dtype, copy=False)
+        for p in parts:
+            setattr(p, k, getattr(p, k)[:0])
+        setattr(out, k, col[o])
+        del col
     return out
+
+
+def _names(codes, names, dtype) -> np.ndarray:
+    """``names[code]`` of each code (``names``: a sequence, or a mapping of codes) as a
+    fixed-width string array, by one look-up table (no Python string per row, which a
+    catalogue of millions of rows would hold while it is made)."""
+    lookup = names if isinstance(names, Mapping) else dict(enumerate(names))
+    table = np.zeros(max(lookup) + 1, dtype=dtype)
+    for code, name in lookup.items():
+        table[code] = name
+    return table[np.asarray(codes, dtype=np.intp)]
 
 
 def _take_history(result) -> list:
@@ -194,28 +214,23 @@ def run_model(forest: "Forest | HDF5Forests", config: Config | None = None, *,
     finally:
         if owned:
             client.close()
-    bh = _merge([r.black_holes for r in results])
+    bh = _merge([r.black_holes for r in results])        # sorted by bh_id
     hist = store if store is not None else _merge_histories(results)
-    o = np.argsort(bh.bh_id, kind="stable")
     weights = forest.volume_weight() if (forest.forest_weight is not None
                                          or forest.box_mpc is not None) else None
     w = (weights[np.searchsorted(forest.forest_ids, bh.forest_id)] if weights is not None
          else np.full(len(bh), np.nan))
+    # the table shares the merged columns (no copies: catalogues grow with the trees)
     table = Table()
-    table["bh_id"] = bh.bh_id[o]
-    table["forest_id"] = bh.forest_id[o]
-    table["seed_channel"] = np.array([CHANNEL_NAMES[int(c)] for c in bh.channel[o]],
-                                     dtype="U12") if len(bh) else np.zeros(0, "U12")
-    table["seed_z"] = bh.seed_z[o]
-    table["seed_mass_msun"] = bh.seed_mass[o]
-    table["final_mass_msun"] = bh.mass[o]
-    table["accreted_msun"] = bh.growth[o]
-    table["final_spin"] = bh.spin[o]
-    table["status"] = np.array([STATUS_NAMES[int(s)] for s in bh.status[o]],
-                               dtype="U16") if len(bh) else np.zeros(0, "U16")
-    table["final_z"] = bh.end_z[o]
-    table["host_mass_msun"] = bh.host_mass[o]
-    table["weight_mpc3"] = w[o]
+    for name, col in (("bh_id", bh.bh_id), ("forest_id", bh.forest_id),
+                      ("seed_channel", _names(bh.channel, CHANNEL_NAMES, "U12")),
+                      ("seed_z", bh.seed_z), ("seed_mass_msun", bh.seed_mass),
+                      ("final_mass_msun", bh.mass), ("accreted_msun", bh.growth),
+                      ("final_spin", bh.spin),
+                      ("status", _names(bh.status, STATUS_NAMES, "U16")),
+                      ("final_z", bh.end_z), ("host_mass_msun", bh.host_mass),
+                      ("weight_mpc3", w)):
+        table.add_column(col, name=name, copy=False)
     units = {"seed_mass_msun": "solMass", "final_mass_msun": "solMass",
              "accreted_msun": "solMass", "host_mass_msun": "solMass", "weight_mpc3": "Mpc-3"}
     for k, u in units.items():
@@ -317,17 +332,27 @@ def _merger_table(results, forest: Forest, cosmo):
         for name, unit, d in _MERGER_COLUMNS:
             t[name] = np.zeros(0, dtype="U12" if name.startswith("seed_channel") else float)
         return t
-    cols = {k: np.concatenate([p[k] for p in parts]) for k in parts[0]}
-    order = np.lexsort((cols["bh_id_2"], cols["t_gyr"]))
-    cols = {k: v[order] for k, v in cols.items()}
+    order = np.lexsort((np.concatenate([p["bh_id_2"] for p in parts]),
+                        np.concatenate([p["t_gyr"] for p in parts])))
+
+    def column(key):
+        # each chunk's part gives up the column once it is copied (merged once)
+        col = np.concatenate([p[key] for p in parts])
+        for p in parts:
+            p[key] = p[key][:0]
+        return col[order]
+
     weights = forest.volume_weight() if (forest.forest_weight is not None
                                          or forest.box_mpc is not None) else None
-    cols["weight_mpc3"] = (weights[np.searchsorted(forest.forest_ids, cols["forest_id"])]
-                           if weights is not None else np.full(cols["z"].size, np.nan))
-    for key in ("seed_channel_1", "seed_channel_2"):
-        cols[key] = np.array([CHANNEL_NAMES[int(c)] for c in cols[key]], dtype="U12")
     for name, unit, d in _MERGER_COLUMNS:
-        t[name] = cols[name]
+        if name == "weight_mpc3":
+            col = (weights[np.searchsorted(forest.forest_ids, t["forest_id"])]
+                   if weights is not None else np.full(order.size, np.nan))
+        elif name.startswith("seed_channel"):
+            col = _names(column(name), CHANNEL_NAMES, "U12")
+        else:
+            col = column(name)
+        t.add_column(col, name=name, copy=False)
         if unit:
             t[name].unit = unit
         t[name].description = d

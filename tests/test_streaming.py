@@ -485,3 +485,43 @@ def test_random_defects_same_verdict(tmp_path_factory, edits, layout):
         assert "duplicate_ids" in lazy_rules
     else:
         assert lazy_rules <= eager_rules, (lazy_rules, eager_rules)
+
+
+# ------------------------------------------------------------------ merging chunk results
+def test_merged_catalogues_hold_no_spare_copies(demo):
+    """Catalogues grow with the trees, not the chunk: a finished chunk's black holes are
+    kept without the growth buffers' spare capacity, the merge takes each chunk's columns
+    once (the chunk gives them up), and the channel and status names come from one look-up
+    table, as the per-row look-up gave them."""
+    from bhgrow.cosmology import Cosmology
+    from bhgrow.parallel import compact_result
+    from bhgrow.pipeline import _merge, _names
+
+    cfg = from_table({"run": FAST})
+    res = engine.run_forest(demo, cfg.model, cfg.run, Cosmology.from_name(cfg.run.cosmology))
+    full = res.black_holes
+    assert any(getattr(full, k).base is not None
+               and getattr(full, k).base.size > len(full) for k in full.__dataclass_fields__)
+    small = compact_result(res).black_holes
+    for k in small.__dataclass_fields__:
+        col = getattr(small, k)
+        assert col.base is None or col.base.size == col.size, k
+        np.testing.assert_array_equal(col, getattr(full, k), err_msg=k)
+
+    # two parts in reverse id order merge into the sorted table
+    half = len(small) // 2
+    parts = [engine.BlackHoles(**{k: getattr(small, k)[s].copy()
+                                  for k in small.__dataclass_fields__})
+             for s in (slice(half, None), slice(0, half))]
+    merged = _merge(parts)
+    o = np.argsort(small.bh_id, kind="stable")
+    for k in small.__dataclass_fields__:
+        np.testing.assert_array_equal(getattr(merged, k), getattr(small, k)[o], err_msg=k)
+        assert all(getattr(p, k).size == 0 for p in parts), k
+
+    codes = small.channel
+    want = np.array([engine.CHANNEL_NAMES[int(c)] for c in codes], dtype="U12")
+    np.testing.assert_array_equal(_names(codes, engine.CHANNEL_NAMES, "U12"), want)
+    want = np.array([engine.STATUS_NAMES[int(s)] for s in small.status], dtype="U16")
+    np.testing.assert_array_equal(_names(small.status, engine.STATUS_NAMES, "U16"), want)
+    assert _names(codes[:0], engine.CHANNEL_NAMES, "U12").dtype == np.dtype("U12")
