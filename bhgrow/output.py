@@ -99,11 +99,12 @@ def write_ecsv(table, path: Path, meta: dict | None = None, *,
     (``str`` of each value, comma-joined, one line per row), two to three times faster.
     Tables this fast path does not cover (masked, mixin, multidimensional, object or bytes
     columns, strings that need CSV quoting or lose blanks, objects other than a Table) are
-    written by astropy whole.
+    written by astropy whole. A :class:`DiskTable` is read a slice of rows at a time (the
+    same file as its :meth:`DiskTable.to_table`, tested).
 
     Parameters
     ----------
-    table : astropy.table.Table
+    table : astropy.table.Table or DiskTable
         Table to write; ``meta`` is merged into ``table.meta`` first.
     path : path-like
         File to write (overwritten).
@@ -116,12 +117,14 @@ def write_ecsv(table, path: Path, meta: dict | None = None, *,
         table.meta.update(meta)
     columns = _ecsv_fast_columns(table)
     if columns is None:
-        table.write(path, format="ascii.ecsv", delimiter=",", overwrite=True)
+        whole = table.to_table() if isinstance(table, DiskTable) else table
+        whole.write(path, format="ascii.ecsv", delimiter=",", overwrite=True)
         return
     import io
 
     head = io.StringIO(newline="")
-    table[:0].write(head, format="ascii.ecsv", delimiter=",")
+    (table.empty() if isinstance(table, DiskTable) else table[:0]).write(
+        head, format="ascii.ecsv", delimiter=",")
     step = max(1, int(chunk_rows or ECSV_CHUNK_ROWS))
     # same open() as astropy's writer (locale encoding, no newline translation)
     with open(path, "w", newline="") as fh:
@@ -141,17 +144,23 @@ def _ecsv_fast_columns(table):
     """
     from astropy.table import MaskedColumn, Table
 
-    if (not isinstance(table, Table) or not len(table.colnames) or table.masked
-            or table.has_mixin_columns):
+    on_disk = isinstance(table, DiskTable)
+    if not on_disk and (not isinstance(table, Table) or table.masked
+                        or table.has_mixin_columns):
+        return None
+    if not len(table.colnames):
         return None
     # numpy's legacy print modes change str() of float scalars (repr(float) no longer agrees)
     plain_floats = np.get_printoptions().get("legacy", False) in (False, None, sys.maxsize)
     out = []
     for name in table.colnames:
-        col = table[name]
-        if isinstance(col, MaskedColumn) or col.ndim != 1:
-            return None
-        arr = col.view(np.ndarray)
+        if on_disk:
+            arr = table.lazy(name)           # read a slice at a time
+        else:
+            col = table[name]
+            if isinstance(col, MaskedColumn) or col.ndim != 1:
+                return None
+            arr = col.view(np.ndarray)
         kind = arr.dtype.kind
         if kind == "f" and arr.dtype == np.float64 and plain_floats:
             out.append((arr, _float64_strs))
@@ -207,6 +216,120 @@ HISTORY_BLOCK_ROWS = 2_000_000
 #: history columns, in file order
 HISTORY_COLUMNS = ("bh_id", "t_gyr", "z", "mass_msun", "mdot_msun_yr", "eddington_ratio",
                    "host_gas_msun")
+
+
+class DiskTable:
+    """A catalogue kept on disk, one ``.npy`` file per column: the black holes or mergers
+    of a run of several chunks, whose catalogues would otherwise grow with the trees
+    (~190 bytes per black hole and ~240 per merger as astropy tables).
+
+    It offers what the products read: ``len(t)``, ``t.colnames``, ``t.meta``, ``t[name]``
+    (the whole column, read into memory: an ``ndarray``) and ``t.rows(start, stop)`` (an
+    astropy Table of a slice, with units and descriptions); :func:`write_ecsv` writes it a
+    slice of rows at a time. ``t.to_table()`` reads all of it into one astropy Table, and
+    any other key (a row mask, an index array) selects rows of that table. Columns are
+    added once each (:meth:`add_column`), all of one length. The directory is removed when
+    the object is garbage-collected or the interpreter exits (only by the process that
+    made it).
+
+    Parameters
+    ----------
+    directory : path-like
+        An empty or missing directory for the columns (created).
+    meta : dict, optional
+        Table metadata (written in the ECSV header).
+    """
+
+    def __init__(self, directory, meta: dict | None = None):
+        self.directory = Path(directory)
+        self.directory.mkdir(parents=True, exist_ok=True)
+        self.meta = dict(meta or {})
+        self.colnames: list = []
+        self._units: dict = {}
+        self._descriptions: dict = {}
+        self._dtypes: dict = {}
+        self._len = None
+        weakref.finalize(self, _remove_tree, str(self.directory), os.getpid())
+
+    def _path(self, name) -> Path:
+        return self.directory / f"{self.colnames.index(name):03d}.npy"
+
+    def add_column(self, values, name: str, *, unit=None, description=None) -> None:
+        """Store ``values`` (1-d) as column ``name``; a unit (string) and a description
+        as astropy's table would carry them."""
+        arr = np.asarray(values)
+        if name in self.colnames:
+            raise ValueError(f"DiskTable: column {name!r} exists")
+        if arr.ndim != 1 or (self._len is not None and arr.size != self._len):
+            raise ValueError(f"DiskTable: column {name!r} must be 1-d with {self._len} rows;"
+                             f" got shape {arr.shape}")
+        self.colnames.append(name)
+        np.save(self._path(name), arr, allow_pickle=False)
+        self._len = arr.size
+        self._dtypes[name] = arr.dtype
+        self._units[name] = unit
+        self._descriptions[name] = description
+
+    def __len__(self) -> int:
+        return int(self._len or 0)
+
+    def __getitem__(self, key):
+        if isinstance(key, str):
+            if key not in self.colnames:
+                raise KeyError(key)
+            return np.load(self._path(key), allow_pickle=False)
+        return self.to_table()[key]
+
+    def lazy(self, name) -> "_DiskColumn":
+        """Column ``name`` as an array-like read only where it is sliced."""
+        return _DiskColumn(self, name)
+
+    def _slice(self, name, start, stop) -> np.ndarray:
+        col = np.load(self._path(name), mmap_mode="r", allow_pickle=False)
+        out = np.array(col[start:stop])
+        del col
+        return out
+
+    def _table(self, columns: dict):
+        from astropy.table import Table
+
+        t = Table(meta=dict(self.meta))
+        for name in self.colnames:
+            t.add_column(columns[name], name=name, copy=False)
+            if self._units[name]:
+                t[name].unit = self._units[name]
+            if self._descriptions[name]:
+                t[name].description = self._descriptions[name]
+        return t
+
+    def empty(self):
+        """The astropy Table of no rows (columns, types, units, descriptions, meta)."""
+        return self._table({n: np.zeros(0, self._dtypes[n]) for n in self.colnames})
+
+    def rows(self, start: int, stop: int):
+        """Rows ``start:stop`` as an astropy Table."""
+        return self._table({n: self._slice(n, start, stop) for n in self.colnames})
+
+    def to_table(self):
+        """The whole catalogue as one astropy Table (in memory)."""
+        return self._table({n: self[n] for n in self.colnames})
+
+
+class _DiskColumn:
+    """One column of a :class:`DiskTable`, read a slice at a time (for :func:`write_ecsv`)."""
+
+    ndim = 1
+
+    def __init__(self, table: DiskTable, name: str):
+        self.table, self.name = table, name
+        self.dtype = table._dtypes[name]
+        self.size = len(table)
+
+    def __getitem__(self, key):
+        if not isinstance(key, slice) or key.step not in (None, 1):
+            raise TypeError("a DiskTable column is read by contiguous slices")
+        start, stop, _ = key.indices(self.size)
+        return self.table._slice(self.name, start, stop)
 
 
 def _remove_tree(path: str, pid: int) -> None:

@@ -153,8 +153,11 @@ def make_figures(tables: dict, mergers, histories, black_holes, gws: dict, setti
         # on disk: read back only the rows of the black holes the figure shows
         histories = histories.most_massive(plots.N_HISTORIES)
     if histories is not None and len(histories.get("bh_id", [])):
-        chans = dict(zip(np.asarray(black_holes["bh_id"]).tolist(),
-                         np.asarray(black_holes["seed_channel"]).tolist()))
+        # the channels of the black holes in these histories only (not a dict of all)
+        ids = np.asarray(black_holes["bh_id"])
+        shown = np.isin(ids, np.unique(np.asarray(histories["bh_id"])))
+        chans = dict(zip(ids[shown].tolist(),
+                         np.asarray(black_holes["seed_channel"])[shown].tolist()))
         out.append(plots.mass_histories(histories, fig_dir / "mass_histories.png",
                                         n=plots.N_HISTORIES, seed_channels=chans))
     # merger rate vs z per seed channel of the pair (both the same channel, or "mixed")

@@ -488,14 +488,16 @@ def test_random_defects_same_verdict(tmp_path_factory, edits, layout):
 
 
 # ------------------------------------------------------------------ merging chunk results
-def test_merged_catalogues_hold_no_spare_copies(demo):
+def test_merged_catalogues_hold_no_spare_copies(demo, tmp_path):
     """Catalogues grow with the trees, not the chunk: a finished chunk's black holes are
-    kept without the growth buffers' spare capacity, the merge takes each chunk's columns
-    once (the chunk gives them up), and the channel and status names come from one look-up
-    table, as the per-row look-up gave them."""
+    kept without the growth buffers' spare capacity, each chunk's result gives its
+    catalogue columns up as it arrives (to disk when a run has several chunks), the
+    catalogue is built from them a column at a time, in memory or on disk alike, and the
+    channel and status names come from one look-up table, as the per-row look-up gave
+    them."""
     from bhgrow.cosmology import Cosmology
     from bhgrow.parallel import compact_result
-    from bhgrow.pipeline import _merge, _names
+    from bhgrow.pipeline import _names
 
     cfg = from_table({"run": FAST})
     res = engine.run_forest(demo, cfg.model, cfg.run, Cosmology.from_name(cfg.run.cosmology))
@@ -508,16 +510,39 @@ def test_merged_catalogues_hold_no_spare_copies(demo):
         assert col.base is None or col.base.size == col.size, k
         np.testing.assert_array_equal(col, getattr(full, k), err_msg=k)
 
-    # two parts in reverse id order merge into the sorted table
+    # two parts in reverse id order make the sorted catalogue; the parts give up their
+    # columns; on disk (several chunks) the same table as in memory
+    from astropy.table import Table
+
+    from bhgrow.output import DiskTable
+    from bhgrow.pipeline import _black_hole_catalogue, _ChunkCatalogues
+
     half = len(small) // 2
-    parts = [engine.BlackHoles(**{k: getattr(small, k)[s].copy()
-                                  for k in small.__dataclass_fields__})
-             for s in (slice(half, None), slice(0, half))]
-    merged = _merge(parts)
     o = np.argsort(small.bh_id, kind="stable")
-    for k in small.__dataclass_fields__:
-        np.testing.assert_array_equal(getattr(merged, k), getattr(small, k)[o], err_msg=k)
-        assert all(getattr(p, k).size == 0 for p in parts), k
+    tables = []
+    for directory in (None, tmp_path / "parts"):
+        cat = _ChunkCatalogues(directory)
+        for s in (slice(half, None), slice(0, half)):
+            r = engine.EngineResult(black_holes=engine.BlackHoles(
+                **{k: getattr(small, k)[s].copy() for k in small.__dataclass_fields__}),
+                history=None, forest=None, ledger={}, baryons={}, n_seeds={}, wall_s=0.0)
+            cat.add(r)
+            assert len(r.black_holes) == 0
+        for k in small.__dataclass_fields__:
+            np.testing.assert_array_equal(np.sort(cat.bh(k)[np.argsort(cat.bh("bh_id"))]),
+                                          np.sort(getattr(small, k)[o]), err_msg=k)
+        table = Table() if directory is None else DiskTable(tmp_path / "table")
+        order = _black_hole_catalogue(cat, lambda f: np.full(f.size, 2.0), table)
+        np.testing.assert_array_equal(cat.bh("bh_id")[order], small.bh_id[o])
+        tables.append(table)
+        cat.close()
+    mem, disk = tables
+    assert disk.colnames == mem.colnames and len(disk) == len(mem) == len(small)
+    for c in mem.colnames:
+        np.testing.assert_array_equal(disk[c], mem[c], err_msg=c)
+        assert disk.empty()[c].unit == mem[c].unit
+        assert disk.empty()[c].description == mem[c].description
+    assert not (tmp_path / "parts").exists()
 
     codes = small.channel
     want = np.array([engine.CHANNEL_NAMES[int(c)] for c in codes], dtype="U12")
@@ -525,3 +550,22 @@ def test_merged_catalogues_hold_no_spare_copies(demo):
     want = np.array([engine.STATUS_NAMES[int(s)] for s in small.status], dtype="U16")
     np.testing.assert_array_equal(_names(small.status, engine.STATUS_NAMES, "U16"), want)
     assert _names(codes[:0], engine.CHANNEL_NAMES, "U12").dtype == np.dtype("U12")
+
+
+def test_catalogues_of_several_chunks_are_on_disk_until_dropped(files, eager, tmp_path):
+    """With several chunks the black holes and mergers stay on disk (DiskTable), equal to
+    a one-chunk run's tables; nothing is left beside the output once the result is gone."""
+    import gc
+
+    from bhgrow.output import DiskTable
+
+    cfg = from_table({"run": {**FAST, "chunk_nodes": 3000}})
+    r = run(cfg, trees=files["indexed"], out=tmp_path / "out")
+    assert r.provenance["n_chunks"] >= 4
+    assert isinstance(r.black_holes, DiskTable) and isinstance(r.mergers, DiskTable)
+    assert_same(eager, r)
+    dirs = [r.black_holes.directory, r.mergers.directory]
+    assert all(d.is_dir() and d.parent == tmp_path for d in dirs)
+    del r
+    gc.collect()
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["out"]
