@@ -366,8 +366,8 @@ class HistoryStore(OnDiskHistories):
 
     A chunk's histories are moved here as soon as the chunk is done (:meth:`add`), so a
     run holds at most the chunks in flight in memory, not every history row of the run
-    (~21 bytes per tree node for the default model; the catalogues, 4-9 bytes per node,
-    stay in memory). Every black hole's rows are in one chunk (chunks hold whole forests),
+    (~21 bytes per tree node for the default model; the catalogues go to disk likewise,
+    :class:`DiskTable`). Every black hole's rows are in one chunk (chunks hold whole forests),
     so the run's order, by ``bh_id`` then time, is the parts' black holes in ``bh_id``
     order: only the ids, row counts and last masses of the black holes are kept in memory.
 
