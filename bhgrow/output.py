@@ -224,7 +224,8 @@ class DiskTable:
     (~190 bytes per black hole and ~240 per merger as astropy tables).
 
     It offers what the products read: ``len(t)``, ``t.colnames``, ``t.meta``, ``t[name]``
-    (the whole column, read into memory: an ``ndarray``) and ``t.rows(start, stop)`` (an
+    (the whole column read into memory, as the astropy ``Column`` a Table would give, with
+    its unit and description) and ``t.rows(start, stop)`` (an
     astropy Table of a slice, with units and descriptions); :func:`write_ecsv` writes it a
     slice of rows at a time. ``t.to_table()`` reads all of it into one astropy Table, and
     any other key (a row mask, an index array) selects rows of that table. Columns are
@@ -274,11 +275,18 @@ class DiskTable:
         return int(self._len or 0)
 
     def __getitem__(self, key):
-        if isinstance(key, str):
-            if key not in self.colnames:
-                raise KeyError(key)
-            return np.load(self._path(key), allow_pickle=False)
-        return self.to_table()[key]
+        if not isinstance(key, str):
+            return self.to_table()[key]
+        if key not in self.colnames:
+            raise KeyError(key)
+        return self._column(key, np.load(self._path(key), allow_pickle=False))
+
+    def _column(self, name, data):
+        """``data`` as the astropy Column a Table would hold (no copy)."""
+        from astropy.table import Column
+
+        return Column(data, name=name, unit=self._units[name],
+                      description=self._descriptions[name], copy=False)
 
     def lazy(self, name) -> "_DiskColumn":
         """Column ``name`` as an array-like read only where it is sliced."""
@@ -312,7 +320,8 @@ class DiskTable:
 
     def to_table(self):
         """The whole catalogue as one astropy Table (in memory)."""
-        return self._table({n: self[n] for n in self.colnames})
+        return self._table({n: np.load(self._path(n), allow_pickle=False)
+                            for n in self.colnames})
 
 
 class _DiskColumn:

@@ -119,8 +119,10 @@ def test_disk_table_columns_rows_and_removal(tmp_path):
     d = disk_table(t, tmp_path / "d")
     assert len(d) == 50 and d.colnames == t.colnames
     for name in t.colnames:
-        assert isinstance(d[name], np.ndarray)
-        np.testing.assert_array_equal(d[name], np.asarray(t[name]), name)
+        col = d[name]
+        assert isinstance(col, Column) and col.name == name
+        assert col.unit == t[name].unit and col.description == t[name].description
+        np.testing.assert_array_equal(np.asarray(col), np.asarray(t[name]), name)
     part = d.rows(5, 17)
     whole = d.to_table()
     for name in t.colnames:
