@@ -127,7 +127,7 @@ def test_reading_one_forest_reads_only_its_rows(demo, files, monkeypatch):
     spans = []
     real = tio._read_span
     monkeypatch.setattr(tio, "_read_span",
-                        lambda ds, a, b: spans.append(b - a) or real(ds, a, b))
+                        lambda ds, a, b, **kw: spans.append(b - a) or real(ds, a, b, **kw))
     src = open_forests(files["indexed"], check=False)
     assert spans == []                                   # opening reads the index only
     fid = int(demo.forest_ids[7])
@@ -157,8 +157,8 @@ def test_reader_never_holds_more_than_a_chunk(files, demo, monkeypatch):
         engine_nodes.append(forest.n_nodes)
         return real_engine(forest, *a)
 
-    monkeypatch.setattr(tio, "_read_span", lambda ds, a, b: spans.append(b - a)
-                        or real_span(ds, a, b))
+    monkeypatch.setattr(tio, "_read_span", lambda ds, a, b, **kw: spans.append(b - a)
+                        or real_span(ds, a, b, **kw))
     monkeypatch.setattr(HDF5Forests, "read_columns", read_columns)
     monkeypatch.setattr(engine, "run_forest", run_forest)
     monkeypatch.setattr(tio, "read_hdf5", lambda *a: pytest.fail("whole file read"))

@@ -243,9 +243,14 @@ GAP_ROWS = 1 << 16
 INDEX_GROUP = "forest_rows"
 
 
-def _read_span(ds, start: int, stop: int) -> np.ndarray:
-    """Rows ``start:stop`` of a 1-D dataset: every read of :class:`HDF5Forests` is one."""
-    return ds[start:stop]
+def _read_span(ds, start: int, stop: int, out=None) -> np.ndarray:
+    """Rows ``start:stop`` of a 1-D dataset: every read of :class:`HDF5Forests` is one.
+    With ``out`` (an array of ``stop - start`` items of the dataset's type, e.g. a slice of
+    a chunk's column) they are read into it, without a temporary copy."""
+    if out is None:
+        return ds[start:stop]
+    ds.read_direct(out, source_sel=np.s_[start:stop])
+    return out
 
 
 def _blocks(n: int):
@@ -504,17 +509,18 @@ class HDF5Forests:
         with self._h5() as h5:
             dsets = {name: h5[f"nodes/{name}"] for name in self.columns}
             if self.grouped:
-                parts, row_parts = self._read_ranges(dsets, pos, rows)
+                cols, row_parts = self._read_ranges(dsets, pos, rows)
             else:
                 parts, row_parts = self._read_scan(dsets, pos, rows)
-        cols = {name: (np.concatenate(parts[name]) if parts[name] else
-                       np.zeros(0, self._dtype[name])) for name in self.columns}
+                cols = {name: (np.concatenate(parts[name]) if parts[name] else
+                               np.zeros(0, self._dtype[name])) for name in self.columns}
         if rows:
             return cols, (np.concatenate(row_parts) if row_parts else np.zeros(0, np.int64))
         return cols
 
     def _read_ranges(self, dsets, pos, want_rows):
-        """Rows of whole forests from their row ranges, merged into spans of nearby rows."""
+        """Rows of whole forests from their row ranges, merged into spans of nearby rows,
+        read straight into the chunk's columns where a span has no gap (no copy)."""
         starts, stops = self._start[pos], self._stop[pos]
         o = np.argsort(starts, kind="stable")
         starts, stops, fids = starts[o], stops[o], self.forest_ids[pos][o]
@@ -523,8 +529,11 @@ class HDF5Forests:
                     | (starts[1:] // block != starts[:-1] // block)]
         first = np.flatnonzero(new)
         ends = np.r_[first[1:], starts.size]
-        parts = {name: [] for name in dsets}
+        # room for every range (a bad index's overlapping ranges hold fewer rows)
+        out = {name: np.empty(int((stops - starts).sum()), dtype=self._dtype[name])
+               for name in dsets}
         row_parts = []
+        at = 0
         for i, j in zip(first, ends):
             a, b = int(starts[i]), int(np.max(stops[i:j]))
             keep = None
@@ -533,18 +542,24 @@ class HDF5Forests:
                 np.add.at(mark, starts[i:j] - a, 1)
                 np.add.at(mark, stops[i:j] - a, -1)
                 keep = np.cumsum(mark[:-1]) > 0
+            n = b - a if keep is None else int(keep.sum())
             for name, ds in dsets.items():
-                arr = _read_span(ds, a, b)
-                parts[name].append(arr if keep is None else arr[keep])
-            got = parts["forest_id"][-1]
+                if not n:
+                    continue
+                if keep is None:
+                    _read_span(ds, a, b, out=out[name][at:at + n])
+                else:
+                    out[name][at:at + n] = _read_span(ds, a, b)[keep]
+            got = out["forest_id"][at:at + n]
             want = np.repeat(fids[i:j], stops[i:j] - starts[i:j])
             if got.shape != want.shape or np.any(np.asarray(got) != want):
                 raise self._bad_index(f"rows {a}..{b - 1} do not all belong to the forests "
                                       f"the index names")
+            at += n
             if want_rows:
                 r = np.arange(a, b, dtype=np.int64)
                 row_parts.append(r if keep is None else r[keep])
-        return parts, row_parts
+        return {k: v[:at] for k, v in out.items()}, row_parts
 
     def _read_scan(self, dsets, pos, want_rows):
         """Rows of forests scattered through the file: stream it, keep their rows."""
