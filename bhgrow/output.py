@@ -227,9 +227,11 @@ class DiskTable:
     (the whole column read into memory, as the astropy ``Column`` a Table would give, with
     its unit and description) and ``t.rows(start, stop)`` (an
     astropy Table of a slice, with units and descriptions); :func:`write_ecsv` writes it a
-    slice of rows at a time. ``t.to_table()`` reads all of it into one astropy Table, and
-    any other key (a row mask, an index array) selects rows of that table. Columns are
-    added once each (:meth:`add_column`), all of one length. The directory is removed when
+    slice of rows at a time. ``t.to_table()`` reads all of it into one astropy Table; any
+    other key (a row mask, an index array) selects rows of that table, iterating gives its
+    rows, and a copy or pickle of a DiskTable is that table. Read-only: columns are added
+    once each (:meth:`add_column`), all of one length; a column read with ``t[name]`` is a
+    copy (changing it changes nothing on disk). The directory is removed when
     the object is garbage-collected or the interpreter exits (only by the process that
     made it).
 
@@ -288,6 +290,18 @@ class DiskTable:
         return Column(data, name=name, unit=self._units[name],
                       description=self._descriptions[name], copy=False)
 
+    def keys(self) -> list:
+        return list(self.colnames)
+
+    def __iter__(self):
+        """Rows, as iterating over the astropy Table does (the whole table is read once)."""
+        return iter(self.to_table())
+
+    def __reduce__(self):
+        # a copy or a pickle is the astropy Table (a second object on the same directory
+        # would lose it when this one is collected)
+        return _table_of, (self.to_table(),)
+
     def lazy(self, name) -> "_DiskColumn":
         """Column ``name`` as an array-like read only where it is sliced."""
         return _DiskColumn(self, name)
@@ -322,6 +336,10 @@ class DiskTable:
         """The whole catalogue as one astropy Table (in memory)."""
         return self._table({n: np.load(self._path(n), allow_pickle=False)
                             for n in self.colnames})
+
+
+def _table_of(table):
+    return table
 
 
 class _DiskColumn:

@@ -258,8 +258,10 @@ def run_model(forest: "Forest | HDF5Forests", config: Config | None = None, *,
         where = Path(checkpoint_dir) if checkpoint_dir is not None else None
 
         def scratch(kind):
-            return tempfile.mkdtemp(prefix=f".{where.name}-{kind}-" if where else
-                                    f"bhgrow-{kind}-", dir=where.parent if where else None)
+            # the pid in the name lets a later run remove what a killed one left behind
+            # (_sweep_scratch)
+            return tempfile.mkdtemp(prefix=f".{where.name}-{kind}-{os.getpid()}-" if where
+                                    else f"bhgrow-{kind}-", dir=where.parent if where else None)
 
         several = len(plan) > 1
         store = HistoryStore(scratch("histories")) if config.run.histories and several \
@@ -329,6 +331,23 @@ def run_model(forest: "Forest | HDF5Forests", config: Config | None = None, *,
     return RunResult(black_holes=table, histories=hist, ledger=ledger, baryons=baryons,
                      n_seeds=n_seeds, provenance=prov, forest=forest, mergers=mergers,
                      pending=pending)
+
+
+def _sweep_scratch(partial: Path) -> None:
+    """Remove the hidden scratch directories (histories, catalogues) that a run of the same
+    output left beside it when it was killed (SIGKILL, out of memory: no clean-up ran); those
+    of a process still running are kept."""
+    for d in partial.parent.glob(f".{partial.name}-*-*-*"):
+        parts = d.name[len(partial.name) + 2:].split("-")
+        pid = int(parts[-2]) if len(parts) >= 3 and parts[-2].isdigit() else None
+        if pid is None or not d.is_dir() or pid == os.getpid():
+            continue
+        try:
+            os.kill(pid, 0)
+        except ProcessLookupError:
+            shutil.rmtree(d, ignore_errors=True)
+        except OSError:
+            pass                # alive (another user's process): keep
 
 
 def _trees_sha256(forest, trees_path):
@@ -589,6 +608,7 @@ def run(config=None, *, trees=None, out=None, overwrite: bool = False,
             raise BhgrowInputError(f"{out}: parent directory {out.parent} does not exist",
                                    source=str(out), rule="no_dir")
         partial = Checkpoint.directory_for(out)
+        _sweep_scratch(partial)
         if partial.exists() and not resume and overwrite:
             shutil.rmtree(partial)
     result = run_model(forest, config, progress=progress, trees_path=path, workers=workers,

@@ -18,6 +18,7 @@ from . import gw as gwmod
 from . import plots
 from .errors import BhgrowInputError
 from .output import HistoryFile, OnDiskHistories
+from .physics.seeding import CHANNEL_CODES
 from .tables import build_tables, history_rows, write_tables
 
 #: measured nHz background amplitude at f = 1/yr reported by NANOGrav from its 15-year data
@@ -167,16 +168,33 @@ def make_figures(tables: dict, mergers, histories, black_holes, gws: dict, setti
     if len(mergers):
         c1 = np.asarray(mergers["seed_channel_1"])
         c2 = np.asarray(mergers["seed_channel_2"])
-        pair = np.where(c1 == c2, c1, "mixed")
+        # pair classes as small codes: c1's channel where both agree, else "mixed" (-1),
+        # in name order; no string array of every merger's pair (catalogues can be large)
+        same = c1 == c2
+        pair = np.full(c1.size, -1, dtype=np.int64)
+        names: list = []
+        for name in CHANNEL_CODES:
+            sel = same & (c1 == name)
+            if sel.any():
+                pair[sel] = len(names)
+                names.append(name)
+        rest = same & (pair < 0)
+        if rest.any():               # channels of a foreign catalogue
+            extra, code = np.unique(c1[rest], return_inverse=True)
+            pair[rest] = len(names) + code
+            names += [str(n) for n in extra]
+        classes = sorted([(n, i) for i, n in enumerate(names)]
+                         + ([("mixed", -1)] if np.any(~same) else []))
+        del c1, c2, same, rest
         z = np.asarray(mergers["z"], dtype=float)
         w = np.asarray(mergers["weight_mpc3"], dtype=float)
         edges = np.r_[np.asarray(t["z_lo"]), np.asarray(t["z_hi"])[-1:]]
         dtg = _bin_gyr(tables)
-        for name in np.unique(pair):
-            sel = pair == name
+        for name, i in classes:
+            sel = pair == i
             s, _ = np.histogram(z[sel], edges, weights=w[sel])
             s2, _ = np.histogram(z[sel], edges, weights=w[sel] ** 2)
-            rates[str(name)] = (s / dtg, np.sqrt(s2) / dtg)
+            rates[name] = (s / dtg, np.sqrt(s2) / dtg)
     out.append(plots.merger_rate_vs_z(t["z_lo"], t["z_hi"], rates,
                                       fig_dir / "merger_rate_vs_z.png",
                                       ylabel=r"merger rate density [Mpc$^{-3}$ Gyr$^{-1}$]",

@@ -298,7 +298,10 @@ def _weights(col, ids, source: str) -> np.ndarray:
 
 
 def _strings(col) -> np.ndarray:
-    return np.asarray(col).astype(str)
+    """The column as a unicode array (no copy if it is one already: catalogues can be
+    large)."""
+    arr = np.asarray(col)
+    return arr if arr.dtype.kind == "U" else arr.astype(str)
 
 
 def history_redshifts(z_snap, binning: Binning) -> np.ndarray:
@@ -602,13 +605,18 @@ def _mbh_mhalo(bh, wb, b: Binning, meta: dict):
 def _seed_channels(bh, wb, mergers, wm, meta: dict):
     from .physics.seeding import CHANNEL_CODES
 
+    live = np.isin(_strings(bh["status"]), _LIVE)
     chan = _strings(bh["seed_channel"])
-    status = _strings(bh["status"])
     mass = np.asarray(bh["final_mass_msun"], dtype=float)
-    live = np.isin(status, _LIVE)
     c1 = _strings(mergers["seed_channel_1"])
     c2 = _strings(mergers["seed_channel_2"])
-    names = list(CHANNEL_CODES) + sorted(set(chan) - set(CHANNEL_CODES))
+    # channel names other than bhgrow's own (a foreign catalogue), without a set of every row
+    known = np.zeros(chan.size, bool)
+    for name in CHANNEL_CODES:
+        known |= chan == name
+    names = list(CHANNEL_CODES) + (np.unique(chan[~known]).tolist() if not known.all()
+                                   else [])
+    del known
     z_end = float(np.min(np.asarray(bh["final_z"], float)[live])) if live.any() else math.nan
     rows = []
     for name in names + ["all"]:   # loop over channels (a handful)

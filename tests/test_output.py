@@ -141,6 +141,15 @@ def test_disk_table_columns_rows_and_removal(tmp_path):
     with pytest.raises(ValueError, match="1-d"):
         d.add_column(np.zeros((50, 2)), "wide")
     assert d.colnames == t.colnames               # nothing added by the refused columns
+    assert d.keys() == t.colnames
+    rows = list(d)                                # rows, as a Table's
+    assert len(rows) == 50 and rows[3]["id"] == t["id"][3]
+    import copy
+    import pickle
+
+    for c in (copy.copy(d), copy.deepcopy(d), pickle.loads(pickle.dumps(d))):
+        assert isinstance(c, Table) and c.colnames == t.colnames   # a copy is the Table
+        np.testing.assert_array_equal(np.asarray(c["lognormal"]), np.asarray(t["lognormal"]))
     assert output.DiskTable(tmp_path / "e").empty().colnames == []
     del d, part, whole
     gc.collect()

@@ -569,3 +569,37 @@ def test_catalogues_of_several_chunks_are_on_disk_until_dropped(files, eager, tm
     del r
     gc.collect()
     assert sorted(p.name for p in tmp_path.iterdir()) == ["out"]
+
+
+def test_scratch_left_by_a_killed_run_is_removed_by_the_next(files, tmp_path):
+    """A run killed outright (no clean-up) leaves its hidden scratch directories beside the
+    output; the next run of that output removes those whose process is gone, and keeps
+    those of a live process."""
+    import os
+    import subprocess
+    import sys
+
+    from bhgrow.pipeline import _sweep_scratch
+
+    gone = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"],
+                          capture_output=True, text=True, check=True).stdout.strip()
+    partial = Checkpoint.directory_for(tmp_path / "out")
+    dead = [tmp_path / f".{partial.name}-{k}-{gone}-ab12" for k in ("histories",
+                                                                    "chunk-catalogues")]
+    alive = [tmp_path / f".{partial.name}-mergers-{os.getpid()}-cd34",
+             tmp_path / f".{partial.name}-histories-1-ef56"]          # pid 1 runs
+    other = [tmp_path / ".other.partial-histories-99999999-gh78", tmp_path / "keep-me"]
+    for d in dead + alive + other:
+        d.mkdir()
+        (d / "x.npy").write_bytes(b"x")
+    _sweep_scratch(partial)
+    assert not any(d.exists() for d in dead)
+    assert all(d.exists() for d in alive + other)
+    for d in alive:
+        d.rename(tmp_path / d.name.replace(str(os.getpid()), gone).replace("-1-", f"-{gone}-"))
+    cfg = from_table({"run": {**FAST, "chunk_nodes": 3000}})
+    run(cfg, trees=files["indexed"], out=tmp_path / "out")
+    import gc
+    gc.collect()
+    assert sorted(p.name for p in tmp_path.iterdir()) == sorted(
+        [".other.partial-histories-99999999-gh78", "keep-me", "out"])
