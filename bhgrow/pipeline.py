@@ -383,6 +383,10 @@ _MERGER_COLUMNS = [
 ]
 
 
+#: merger columns that are not float64 (as the engine's merger records and the names give)
+_MERGER_DTYPES = {"forest_id": np.int64, "bh_id_1": np.int64, "bh_id_2": np.int64,
+                  "ejected": np.bool_, "seed_channel_1": "U12", "seed_channel_2": "U12"}
+
 #: black-hole catalogue: column, its :class:`bhgrow.engine.BlackHoles` field (None: the
 #: forest's weight), unit, description
 _BH_COLUMNS = [
@@ -430,9 +434,10 @@ def _merger_table(cat: _ChunkCatalogues, weights_of, table=None):
     from astropy.table import Table
 
     if not cat.n_mergers:
+        # no rows, but the columns, types, units and descriptions of a run with mergers
         t = Table()
         for name, unit, d in _MERGER_COLUMNS:
-            t[name] = np.zeros(0, dtype="U12" if name.startswith("seed_channel") else float)
+            _put(t, np.zeros(0, dtype=_MERGER_DTYPES.get(name, np.float64)), name, unit, d)
         return t
     t = Table() if table is None else table
     order = np.lexsort((cat.merger("bh_id_2"), cat.merger("t_gyr")))

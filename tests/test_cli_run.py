@@ -128,3 +128,29 @@ def test_products_summary_tables_compare(tmp_path, small_trees, capsys):
     assert "| n_mergers |" in text and " a " in text.replace("|", " ")
     assert (cmp_dir / "merger_rate_vs_z.png").exists()
     assert main(["compare", str(a), str(tmp_path / "nope"), "-o", str(tmp_path / "c2")]) == 2
+
+
+def test_empty_merger_catalogue_has_the_columns_of_a_full_one(tmp_path):
+    """A run without coalescences writes mergers.ecsv with the header (types, units,
+    descriptions) of one with them, only no rows."""
+    from astropy.table import Table
+
+    from bhgrow.config import from_table
+    from bhgrow.pipeline import load_forest, demo_trees_path, run, write_run
+
+    demo = load_forest(demo_trees_path())
+    forest = demo.select_forests(demo.forest_ids[::60])
+    full = run(from_table({"run": {"max_substeps": 4}}), trees=forest)
+    none = run(from_table({"run": {"max_substeps": 4}, "seeding": {"channels": []}}),
+               trees=forest)
+    assert len(full.mergers) > 0 and len(none.mergers) == 0
+    a, b = full.mergers, none.mergers
+    assert a.colnames == b.colnames
+    for c in a.colnames:
+        assert (a[c].dtype, a[c].unit, a[c].description) == \
+            (b[c].dtype, b[c].unit, b[c].description), c
+    cfg = from_table({"run": {"max_substeps": 4}, "seeding": {"channels": []}})
+    write_run(none, cfg, tmp_path / "none", products=False)
+    back = Table.read(tmp_path / "none" / "mergers.ecsv")
+    assert len(back) == 0 and back["bh_id_1"].dtype == np.int64
+    assert str(back["m1_msun"].unit) == "solMass"
