@@ -304,6 +304,21 @@ def _strings(col) -> np.ndarray:
     return arr if arr.dtype.kind == "U" else arr.astype(str)
 
 
+def _name_codes(col, names: list) -> np.ndarray:
+    """Position in ``names`` of each row's string (int16); names not yet in the list are
+    appended, sorted. ``names`` is extended in place."""
+    arr = _strings(col)
+    codes = np.full(arr.size, -1, dtype=np.int16)
+    for k, name in enumerate(names):
+        codes[arr == name] = k
+    rest = codes < 0
+    if rest.any():
+        extra, inv = np.unique(arr[rest], return_inverse=True)
+        codes[rest] = len(names) + inv
+        names.extend(str(n) for n in extra)
+    return codes
+
+
 def history_redshifts(z_snap, binning: Binning) -> np.ndarray:
     """The snapshot redshifts (of ``z_snap``) whose history rows :func:`build_tables` uses:
     those nearest each redshift of ``binning.mass_function_z`` and ``eddington_z``."""
@@ -606,22 +621,19 @@ def _seed_channels(bh, wb, mergers, wm, meta: dict):
     from .physics.seeding import CHANNEL_CODES
 
     live = np.isin(_strings(bh["status"]), _LIVE)
-    chan = _strings(bh["seed_channel"])
     mass = np.asarray(bh["final_mass_msun"], dtype=float)
-    c1 = _strings(mergers["seed_channel_1"])
-    c2 = _strings(mergers["seed_channel_2"])
-    # channel names other than bhgrow's own (a foreign catalogue), without a set of every row
-    known = np.zeros(chan.size, bool)
-    for name in CHANNEL_CODES:
-        known |= chan == name
-    names = list(CHANNEL_CODES) + (np.unique(chan[~known]).tolist() if not known.all()
-                                   else [])
-    del known
+    # channels as small codes (bhgrow's own first, then any other names of a foreign
+    # catalogue, sorted), so no string column of every row is held through the loop
+    names = list(CHANNEL_CODES)
+    chan = _name_codes(bh["seed_channel"], names)
+    # (names found only among the mergers get codes past the table's rows, as before)
+    c1 = _name_codes(mergers["seed_channel_1"], list(names))
+    c2 = _name_codes(mergers["seed_channel_2"], list(names))
     z_end = float(np.min(np.asarray(bh["final_z"], float)[live])) if live.any() else math.nan
     rows = []
-    for name in names + ["all"]:   # loop over channels (a handful)
-        sel = np.ones(chan.size, bool) if name == "all" else chan == name
-        msel = np.ones(c1.size, bool) if name == "all" else (c1 == name) | (c2 == name)
+    for k, name in enumerate(names + ["all"]):   # loop over channels (a handful)
+        sel = np.ones(chan.size, bool) if name == "all" else chan == k
+        msel = np.ones(c1.size, bool) if name == "all" else (c1 == k) | (c2 == k)
         ls = sel & live
         rows.append((
             name, int(sel.sum()), wb[sel].sum(), math.sqrt(np.sum(wb[sel] ** 2)),
