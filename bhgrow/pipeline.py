@@ -17,7 +17,8 @@ import numpy as np
 from . import __version__
 from .config import Config, load_config, write_toml
 from .cosmology import Cosmology
-from .engine import CHANNEL_NAMES, SINKING, STATUS_NAMES, BlackHoles
+from .engine import (CHANNEL_NAMES, EJECTED, EJECTED_TRIPLE, SINKING, STATUS_NAMES,
+                     BlackHoles)
 from .errors import BhgrowInputError
 from .output import (HISTORY_COLUMNS, DiskTable, HistoryStore, RunDirectory, _remove_tree,
                      file_sha256, write_ecsv, write_histories, write_json)
@@ -309,8 +310,8 @@ def run_model(forest: "Forest | HDF5Forests", config: Config | None = None, *,
          description=f"sky-averaged LISA SNR ({config.gw.waveform}, "
                      f"{config.gw.mission_yr:g}-yr mission)")
     status = cat.bh("status")
-    pending = _pending_table(cat, order[status[order] == SINKING], forest, cosmo, weights)
-    n_ejected = int(np.isin(status, (4, 5)).sum())
+    pending = _pending_table(cat, order[status[order] == SINKING], weights_of, cosmo)
+    n_ejected = int(np.isin(status, (EJECTED, EJECTED_TRIPLE)).sum())
     del status
     cat.close()
     prov = {"bhgrow_version": __version__, "seed": config.run.seed,
@@ -453,28 +454,27 @@ def _merger_table(cat: _ChunkCatalogues, weights_of, table=None):
     return t
 
 
-def _pending_table(cat: _ChunkCatalogues, rows, forest: Forest, cosmo, weights):
+def _pending_table(cat: _ChunkCatalogues, rows, weights_of, cosmo):
     """Pairs still sinking at the end: the black holes at ``rows`` (positions in the
-    chunks' concatenation, in bh_id order)."""
+    chunks' concatenation, in bh_id order; a few per cent of the holes)."""
     from astropy.table import Table
 
     from .pairs import cosmo_z
 
-    fields = ("bh_id", "forest_id", "mass", "host_mass", "t_hmerge", "t_df_end", "t_c")
-    bh = BlackHoles(**{k: cat.bh(k)[rows] for k in fields})
-    idx = np.arange(len(bh))
+    def col(field):
+        return cat.bh(field)[rows]
+
     t0 = float(cosmo.age_gyr(0.0))
     t = Table()
-    t["bh_id"] = bh.bh_id[idx]
-    t["forest_id"] = bh.forest_id[idx]
-    t["weight_mpc3"] = (weights[np.searchsorted(forest.forest_ids, bh.forest_id[idx])]
-                        if weights is not None else np.full(idx.size, np.nan))
-    t["mass_msun"] = bh.mass[idx]
-    t["host_mass_msun"] = bh.host_mass[idx]
-    t["halo_merger_t_gyr"] = bh.t_hmerge[idx]
-    t["nucleus_t_gyr"] = bh.t_df_end[idx]
-    t["coalescence_t_gyr"] = bh.t_c[idx]
-    tc = bh.t_c[idx]
+    t["bh_id"] = col("bh_id")
+    t["forest_id"] = col("forest_id")
+    t["weight_mpc3"] = weights_of(np.asarray(t["forest_id"]))
+    t["mass_msun"] = col("mass")
+    t["host_mass_msun"] = col("host_mass")
+    t["halo_merger_t_gyr"] = col("t_hmerge")
+    t["nucleus_t_gyr"] = col("t_df_end")
+    tc = col("t_c")
+    t["coalescence_t_gyr"] = tc
     t["coalescence_z"] = np.where(tc <= t0, cosmo_z(cosmo, np.minimum(tc, t0)), np.nan)
     t["after_today"] = tc > t0
     for k, u in (("mass_msun", "solMass"), ("host_mass_msun", "solMass"),
