@@ -19,7 +19,7 @@ from . import plots
 from .errors import BhgrowInputError
 from .output import HistoryFile, OnDiskHistories
 from .physics.seeding import CHANNEL_CODES
-from .tables import build_tables, history_rows, write_tables
+from .tables import _name_codes, build_tables, history_rows, write_tables
 
 #: measured nHz background amplitude at f = 1/yr reported by NANOGrav from its 15-year data
 #: set (Agazie et al. 2023, ApJL 951, L8): 2.4e-15 (memory; median for a -2/3 spectrum)
@@ -170,22 +170,12 @@ def make_figures(tables: dict, mergers, histories, black_holes, gws: dict, setti
         c2 = np.asarray(mergers["seed_channel_2"])
         # pair classes as small codes: c1's channel where both agree, else "mixed" (-1),
         # in name order; no string array of every merger's pair (catalogues can be large)
+        names = list(CHANNEL_CODES)
         same = c1 == c2
-        pair = np.full(c1.size, -1, dtype=np.int64)
-        names: list = []
-        for name in CHANNEL_CODES:
-            sel = same & (c1 == name)
-            if sel.any():
-                pair[sel] = len(names)
-                names.append(name)
-        rest = same & (pair < 0)
-        if rest.any():               # channels of a foreign catalogue
-            extra, code = np.unique(c1[rest], return_inverse=True)
-            pair[rest] = len(names) + code
-            names += [str(n) for n in extra]
-        classes = sorted([(n, i) for i, n in enumerate(names)]
-                         + ([("mixed", -1)] if np.any(~same) else []))
-        del c1, c2, same, rest
+        pair = np.where(same, _name_codes(c1, names), -1)
+        classes = sorted([(names[i], int(i)) for i in np.unique(pair[same])]
+                         + ([("mixed", -1)] if not same.all() else []))
+        del c1, c2, same
         z = np.asarray(mergers["z"], dtype=float)
         w = np.asarray(mergers["weight_mpc3"], dtype=float)
         edges = np.r_[np.asarray(t["z_lo"]), np.asarray(t["z_hi"])[-1:]]
