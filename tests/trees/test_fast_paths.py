@@ -316,8 +316,7 @@ def test_seen_ids_records_and_grows():
         for p in parts:
             seen.add(p)
         assert seen.all_unique(), order
-        flagged = np.flatnonzero(seen.flags) + seen.lo
-        np.testing.assert_array_equal(flagged, np.sort(ids))
+        np.testing.assert_array_equal(seen.recorded(), np.sort(ids))
     seen = _SeenIds(10**6)
     seen.add(ids[:100])
     seen.add(np.r_[ids[100:200], ids[50]])                    # an id again, other chunk
@@ -327,7 +326,7 @@ def test_seen_ids_records_and_grows():
 @pytest.mark.parametrize("values, unique", [
     (np.array([2**63 - 1, 2**63 - 2]), True),                # top of int64, no overflow
     (np.array([-2**63, -2**63 + 1]), True),
-    (np.array([0, 10**7]), False),                           # spans more flags than allowed
+    (np.array([0, 8000]), False),                            # 8001 values: more than 8000 bits
     (np.array([1.0, 2.0]), False),                           # not integers: dropped
     (np.array([1, 2], dtype=np.uint8), True),
 ])
@@ -339,12 +338,55 @@ def test_seen_ids_limits(values, unique):
 
 
 def test_seen_ids_drop_when_the_range_grows_too_far():
-    seen = _SeenIds(1000)
+    seen = _SeenIds(125)                                    # flags for 1000 id values
     seen.add(np.arange(0, 600))
     seen.add(np.arange(600, 990))                           # grows within the limit
     assert seen.all_unique()
     seen.add(np.arange(-20, -10))                           # needs 1010 flags
     assert not seen.all_unique() and seen.flags is None
+
+
+@pytest.mark.parametrize("spread", [1, 3, 50])           # dense chunks .. scattered ones
+def test_seen_ids_bits_against_a_set(spread):
+    # the flag bits record exactly the set of ids added, whichever way a chunk is
+    # flagged (unpacked bytes for dense chunks, bitwise_or.at for scattered ones) and
+    # however the flags grow (down by amounts that are not whole bytes, up, both)
+    rng = np.random.default_rng(spread)
+    for trial in range(20):
+        n = int(rng.integers(1, 4000))
+        ids = rng.choice(n * spread + 17, size=n, replace=False) + int(rng.integers(-999, 999))
+        parts = np.array_split(ids if trial % 2 else np.sort(ids)[::-1],
+                               int(rng.integers(1, 9)))
+        seen = _SeenIds(10**6)
+        for p in parts:
+            seen.add(p)
+        assert seen.all_unique()
+        np.testing.assert_array_equal(seen.recorded(), np.sort(ids))
+        # one id of an earlier chunk again, among new ones: a repeat in either path
+        if len(parts) > 1 and parts[0].size:
+            again = np.r_[ids.max() + 1 + np.arange(5) * spread, parts[0][-1]]
+            seen.add(again)
+            assert not seen.all_unique() and seen.flags is None
+
+
+def test_seen_ids_capacity_is_eight_ids_per_byte():
+    seen = _SeenIds(1000)
+    seen.add(np.array([5, 5 + 7999]))                       # 8000 values: fits
+    assert seen.all_unique()
+    seen.add(np.array([4]))                                 # 8001: does not
+    assert not seen.all_unique()
+
+
+def test_id_buckets_fill_evenly():
+    # ids in arithmetic progression (a common layout: forest * 10**k + node) spread over
+    # the buckets; a repeated id always lands in the same bucket
+    for step in (1, 7, 1000, 2**20, 10**10):
+        ids = np.arange(200_000, dtype=np.int64) * step + 123
+        for n_buckets in (3, 64, 1000):
+            counts = np.bincount(tio._id_buckets(ids, n_buckets), minlength=n_buckets)
+            assert counts.max() < 1.3 * ids.size / n_buckets, (step, n_buckets)
+    assert np.array_equal(tio._id_buckets(np.array([-5, 9, -5]), 7)[[0, 2]],
+                          tio._id_buckets(np.array([-5, -5]), 7))
 
 
 # ================================================================ HDF5Forests.check
@@ -432,3 +474,32 @@ def test_check_of_sparse_ids_above_the_budget_streams_them(tmp_path, monkeypatch
                         lambda self, *a, **k: calls.append(1) or real(self, *a, **k))
     assert open_forests(path, max_nodes=max(1, g.n_nodes // 7)).checked
     assert calls                                                # the previous search ran
+
+
+@pytest.mark.parametrize("n_repeats", [0, 1, 40])
+def test_streaming_search_reads_node_ids_twice_whatever_the_size(tmp_path, monkeypatch,
+                                                                 n_repeats):
+    # the search by hash buckets: two passes over node_id (count, then place), however
+    # many buckets the budget asks for, and exactly the ids that occur more than once
+    path, g = _file(tmp_path, "a.h5", scale=10**10)
+    rng = np.random.default_rng(n_repeats)
+    with h5py.File(path, "r+") as h5:
+        ids = h5["nodes/node_id"][()]
+        dst = rng.choice(ids.size, size=n_repeats, replace=False)
+        ids[dst] = ids[rng.integers(0, ids.size, n_repeats)]
+        h5["nodes/node_id"][...] = ids
+    values, counts = np.unique(ids, return_counts=True)
+    want = values[counts > 1]                                  # numpy's own count
+    monkeypatch.setattr(tio, "READ_BLOCK_ROWS", 50)
+    src = open_forests(path, check=False)
+    calls = []
+    real = HDF5Forests._node_blocks
+    monkeypatch.setattr(HDF5Forests, "_node_blocks",
+                        lambda self, *a, **k: calls.append(1) or real(self, *a, **k))
+    n = ids.size
+    for budget in (n // 12, n // 3, n - 1, n):                 # 2n/budget buckets; n: kept
+        calls.clear()
+        got = src._duplicate_node_ids(budget)
+        assert len(calls) == (2 if budget < n else 1), budget
+        np.testing.assert_array_equal(got, want)
+        assert got.dtype == np.int64
