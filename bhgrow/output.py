@@ -100,7 +100,8 @@ def write_ecsv(table, path: Path, meta: dict | None = None, *,
     Tables this fast path does not cover (masked, mixin, multidimensional, object or bytes
     columns, strings that need CSV quoting or lose blanks, objects other than a Table) are
     written by astropy whole. A :class:`DiskTable` is read a slice of rows at a time (the
-    same file as its :meth:`DiskTable.to_table`, tested).
+    same file as its :meth:`DiskTable.to_table`, tested). :class:`EcsvFile` writes the
+    same file in parts (by several processes).
 
     Parameters
     ----------
@@ -113,26 +114,85 @@ def write_ecsv(table, path: Path, meta: dict | None = None, *,
     chunk_rows : int, optional
         Rows formatted at a time (bounds memory); default :data:`ECSV_CHUNK_ROWS`.
     """
-    if meta:
-        table.meta.update(meta)
-    columns = _ecsv_fast_columns(table)
-    if columns is None:
-        whole = table.to_table() if isinstance(table, DiskTable) else table
-        whole.write(path, format="ascii.ecsv", delimiter=",", overwrite=True)
-        return
-    import io
+    EcsvFile(table, path, meta, chunk_rows=chunk_rows).write_part(0)
 
-    head = io.StringIO(newline="")
-    (table.empty() if isinstance(table, DiskTable) else table[:0]).write(
-        head, format="ascii.ecsv", delimiter=",")
-    step = max(1, int(chunk_rows or ECSV_CHUNK_ROWS))
-    # same open() as astropy's writer (locale encoding, no newline translation)
-    with open(path, "w", newline="") as fh:
-        fh.write(head.getvalue())
-        for start in range(0, len(table), step):
-            strs = [fmt(arr[start:start + step]) for arr, fmt in columns]
-            fh.write(os.linesep.join(map(",".join, zip(*strs))))
-            fh.write(os.linesep)
+
+class EcsvFile:
+    """The file :func:`write_ecsv` writes, made as ``parts`` runs of rows that separate
+    processes may write at once (:meth:`write_part`), then :meth:`join` ed.
+
+    Part 0 (with the header) goes to ``path`` itself, part ``k`` to a hidden file beside
+    it, which :meth:`join` appends to ``path`` and removes. The rows of a part are
+    formatted exactly as :func:`write_ecsv` formats them, so the joined file is the same,
+    byte for byte. A table the fast path does not cover, or without rows, is one part.
+    The table and the formatters are set up here, once, before the parts are handed out
+    (forked workers inherit them; a :class:`DiskTable` is read by each part from disk).
+
+    Parameters
+    ----------
+    table, path, meta, chunk_rows
+        As for :func:`write_ecsv`.
+    parts : int
+        Runs of rows (at most one per row).
+    """
+
+    def __init__(self, table, path, meta: dict | None = None, *, parts: int = 1,
+                 chunk_rows: int | None = None):
+        if meta:
+            table.meta.update(meta)
+        self.table, self.path = table, Path(path)
+        self.step = max(1, int(chunk_rows or ECSV_CHUNK_ROWS))
+        self.columns = _ecsv_fast_columns(table)
+        n = len(table) if self.columns is not None else 0
+        k = max(1, min(int(parts), n))
+        self.edges = np.linspace(0, n, k + 1).round().astype(np.int64) if n else \
+            np.zeros(2, np.int64)
+        self.header = None
+        if self.columns is not None:
+            import io
+
+            head = io.StringIO(newline="")
+            (table.empty() if isinstance(table, DiskTable) else table[:0]).write(
+                head, format="ascii.ecsv", delimiter=",")
+            self.header = head.getvalue()
+
+    @property
+    def n_parts(self) -> int:
+        return self.edges.size - 1
+
+    def _part_path(self, k: int) -> Path:
+        return self.path if k == 0 else self.path.with_name(f".{self.path.name}.part{k}")
+
+    def write_part(self, k: int) -> None:
+        """Write part ``k`` (0 <= k < :attr:`n_parts`)."""
+        if self.columns is None:
+            table = self.table
+            whole = table.to_table() if isinstance(table, DiskTable) else table
+            whole.write(self.path, format="ascii.ecsv", delimiter=",", overwrite=True)
+            return
+        start, stop = int(self.edges[k]), int(self.edges[k + 1])
+        # same open() as astropy's writer (locale encoding, no newline translation)
+        with open(self._part_path(k), "w", newline="") as fh:
+            if k == 0:
+                fh.write(self.header)
+            for a in range(start, stop, self.step):
+                b = min(stop, a + self.step)
+                strs = [fmt(arr[a:b]) for arr, fmt in self.columns]
+                fh.write(os.linesep.join(map(",".join, zip(*strs))))
+                fh.write(os.linesep)
+
+    def join(self) -> None:
+        """Append parts 1, 2, ... to ``path`` (after every part is written)."""
+        if self.n_parts == 1:
+            return
+        import shutil
+
+        with open(self.path, "ab") as out:
+            for k in range(1, self.n_parts):
+                part = self._part_path(k)
+                with open(part, "rb") as src:
+                    shutil.copyfileobj(src, out, 1 << 22)
+                part.unlink()
 
 
 def _ecsv_fast_columns(table):

@@ -843,6 +843,19 @@ def map_tasks(task, n_tasks: int, workers: int, *, what: str, done=None,
     return None if done is not None else [out[i] for i in range(n_tasks)]
 
 
+def run_tasks(tasks: list, workers: int, *, what: str) -> list:
+    """Call each of ``tasks`` (functions of no argument) once; their results, in order.
+
+    Where workers are forked (Linux) and ``workers`` > 1, on that many local workers
+    (:func:`map_tasks`: this process and forked ones, which inherit the tasks, so closures
+    are fine; only the results travel), handed out in list order, so put the largest first.
+    Otherwise here, in order. ``what`` completes the message if a worker dies.
+    """
+    if workers > 1 and len(tasks) > 1 and default_start_method() == "fork":
+        return map_tasks(lambda i: tasks[i](), len(tasks), workers, what=what)
+    return [t() for t in tasks]
+
+
 def _run_pool(n_proc, task, todo, done, started, start_method, what, *,
               saved: bool = False, refresh=None, payload=None) -> None:
     """Run ``task(i)`` for ``i`` in ``todo`` on ``n_proc`` workers: ``n_proc - 1`` forked

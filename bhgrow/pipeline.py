@@ -20,8 +20,8 @@ from .cosmology import Cosmology
 from .engine import (CHANNEL_NAMES, EJECTED, EJECTED_TRIPLE, SINKING, STATUS_NAMES,
                      BlackHoles)
 from .errors import BhgrowInputError
-from .output import (HISTORY_COLUMNS, DiskTable, HistoryStore, RunDirectory, _remove_tree,
-                     file_sha256, write_ecsv, write_histories, write_json)
+from .output import (HISTORY_COLUMNS, DiskTable, EcsvFile, HistoryStore, RunDirectory,
+                     _remove_tree, file_sha256, write_histories, write_json)
 from .trees.forest import Forest
 from .trees.io import HDF5Forests, is_hdf5_path, load_forest, open_forests
 
@@ -514,51 +514,59 @@ def _combine_ledger(parts: list, plan: list, cat: _ChunkCatalogues) -> dict:
 #: rows formatted at a time when writing a catalogue (the strings of a slice are held in
 #: memory: ~0.14 kB per value, ~28 MB for 10,000 rows of the 21-column merger catalogue)
 ECSV_ROWS = 10_000
-
-
-def _write_ecsv_rows(table, path: Path, meta: dict | None = None) -> None:
-    """:func:`bhgrow.output.write_ecsv`, formatting at most :data:`ECSV_ROWS` rows at a time.
-
-    The file is the same, byte for byte, as one written whole by astropy (tested).
-    """
-    write_ecsv(table, path, meta=meta, chunk_rows=ECSV_ROWS)
+#: with several workers, a catalogue is written in parts of about this many rows (at most
+#: four per worker), which the workers format at once (:class:`bhgrow.output.EcsvFile`)
+ECSV_PART_ROWS = 50_000
 
 
 def write_run(result: RunResult, config: Config, out, *, overwrite: bool = False,
               products: bool = True, workers: int | None = None) -> Path:
     """Write a run directory atomically (see :mod:`bhgrow.output`).
 
-    With ``workers`` (default ``run.workers``) above 1, the figures are drawn by a forked
-    process while this one writes the catalogues, histories and tables
-    (:func:`bhgrow.products.make_products`); the files are the same.
+    With ``workers`` (default ``run.workers``) above 1, the files are written by that many
+    local workers at once (:func:`bhgrow.parallel.run_tasks`): the figures, the histories,
+    the catalogues in parts of rows (joined here afterwards) and the rest; the files are
+    the same, byte for byte, as with one.
     """
-    from .parallel import n_local_workers
+    from functools import partial
 
-    workers = config.run.workers if workers is None else workers
+    from .parallel import default_start_method, n_local_workers, run_tasks
+
+    n_proc = n_local_workers(config.run.workers if workers is None else workers)
+    split = n_proc > 1 and default_start_method() == "fork"
+    made = f"bhgrow {__version__}"
     with RunDirectory(out, overwrite=overwrite) as tmp:
-        def files():
-            _write_ecsv_rows(result.black_holes, tmp / "black_holes.ecsv",
-                             meta={"made_by": f"bhgrow {__version__}",
-                                   "seed": config.run.seed,
-                                   "trees": result.provenance.get("trees")})
-            _write_ecsv_rows(result.mergers, tmp / "mergers.ecsv",
-                             meta={"made_by": f"bhgrow {__version__}", "seed": config.run.seed})
-            _write_ecsv_rows(result.pending, tmp / "pending_pairs.ecsv",
-                             meta={"made_by": f"bhgrow {__version__}", "seed": config.run.seed})
-            if config.run.histories:
-                write_histories(result.histories, tmp / "histories.h5")
+        def catalogue(table, name, meta):
+            parts = min(4 * n_proc, -(-len(table) // ECSV_PART_ROWS)) if split else 1
+            return EcsvFile(table, tmp / name, meta, parts=parts, chunk_rows=ECSV_ROWS)
+
+        cats = [catalogue(result.black_holes, "black_holes.ecsv",
+                          {"made_by": made, "seed": config.run.seed,
+                           "trees": result.provenance.get("trees")}),
+                catalogue(result.mergers, "mergers.ecsv",
+                          {"made_by": made, "seed": config.run.seed}),
+                catalogue(result.pending, "pending_pairs.ecsv",
+                          {"made_by": made, "seed": config.run.seed})]
+        tasks = []
+        if config.run.histories:
+            tasks.append(lambda: write_histories(result.histories, tmp / "histories.h5"))
+        tasks += [partial(c.write_part, k) for c in cats for k in range(c.n_parts)]
+
+        def small():
             (tmp / "config.toml").write_text(write_toml(config.table))
             write_json(result.provenance, tmp / "run.json")
 
+        tasks.append(small)
         if products:
             from .products import make_products
 
             result.summary = make_products(result, config,
                                            Cosmology.from_name(config.run.cosmology), tmp,
-                                           name=Path(out).name,
-                                           workers=n_local_workers(workers), also=files)
+                                           name=Path(out).name, workers=n_proc, also=tasks)
         else:
-            files()
+            run_tasks(tasks, n_proc, what="writing the run directory")
+        for c in cats:
+            c.join()
     return Path(out)
 
 

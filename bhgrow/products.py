@@ -235,16 +235,18 @@ def _bin_gyr(tables) -> np.ndarray:
 
 
 def make_products(result, config, cosmo, run_dir: Path, *, name: str | None = None,
-                  workers: int = 1, also=None) -> dict:
+                  workers: int = 1, also=()) -> dict:
     """Write tables/, figures/, summary.md and summary.json into ``run_dir``.
 
-    ``also``: a function writing other files of the run directory, called here first. With
-    ``workers`` > 1 where workers are forked (Linux), the figures (~half the time, with
-    matplotlib's import) are drawn by a forked process meanwhile
-    (:func:`bhgrow.parallel.map_tasks`); the files are the same either way.
+    ``also``: other tasks writing files of the run directory (functions of no argument,
+    largest first), run with these. With ``workers`` > 1 where workers are forked (Linux),
+    the tasks are shared by that many local workers (:func:`bhgrow.parallel.run_tasks`):
+    the figures (~2.5 s with matplotlib's import, the largest) go first to a forked
+    process, the other tasks to whichever worker is free; the files are the same either
+    way.
     """
     from .output import write_ecsv, write_json
-    from .parallel import default_start_method, map_tasks
+    from .parallel import run_tasks
 
     run_dir = Path(run_dir)
     settings = config.gw
@@ -258,12 +260,10 @@ def make_products(result, config, cosmo, run_dir: Path, *, name: str | None = No
     gws = gw_summary(result.mergers, cosmo, settings, config.binning.z_edges)
 
     def figures():
-        return make_figures(tables, result.mergers, hist, result.black_holes, gws, settings,
-                            run_dir / "figures")
+        make_figures(tables, result.mergers, hist, result.black_holes, gws, settings,
+                     run_dir / "figures")
 
     def files():
-        if also is not None:
-            also()
         tdir = run_dir / "tables"
         tdir.mkdir(exist_ok=True)
         write_tables(tables, tdir)
@@ -275,15 +275,8 @@ def make_products(result, config, cosmo, run_dir: Path, *, name: str | None = No
         (run_dir / "summary.md").write_text(_summary_md(summary, name or run_dir.name))
         return summary
 
-    if workers > 1 and default_start_method() == "fork":
-        # task 0 goes to the forked process, task 1 runs here (a closure is fine: forked
-        # workers inherit it, nothing is pickled but the figures' paths)
-        _, summary = map_tasks(lambda i: figures() if i == 0 else files(), 2, 2,
-                               what="drawing the run's figures")
-    else:
-        summary = files()
-        figures()
-    return summary
+    return run_tasks([figures, *also, files], workers,
+                     what="writing the run directory")[-1]
 
 
 def products_from_run(run_dir, config=None) -> dict:

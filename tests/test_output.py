@@ -16,7 +16,7 @@ import numpy as np
 import pytest
 from astropy.table import Column, MaskedColumn, Table
 
-from bhgrow import output, pipeline, plots
+from bhgrow import output, plots
 from bhgrow.output import read_histories, write_ecsv, write_histories
 
 
@@ -199,11 +199,17 @@ def test_ecsv_legacy_numpy_print_mode(tmp_path):
     assert b"\n0.333333333333,1\n" in ref     # the legacy text, not repr's 16 digits
 
 
-def test_catalogue_slices_are_astropys_bytes(tmp_path, monkeypatch):
-    """write_run's catalogue writer (a slice of rows at a time) against astropy whole."""
-    monkeypatch.setattr(pipeline, "ECSV_ROWS", 11)
+@pytest.mark.parametrize("parts", [1, 3, 7])
+def test_catalogue_slices_and_parts_are_astropys_bytes(tmp_path, parts):
+    """write_run's catalogue writer (slices of rows, in parts joined afterwards) against
+    astropy writing the table whole."""
+    from bhgrow.output import EcsvFile
+
     t = mixed_table(100)
-    pipeline._write_ecsv_rows(t, tmp_path / "rows.ecsv", meta={"seed": 3})
+    f = EcsvFile(t, tmp_path / "rows.ecsv", meta={"seed": 3}, parts=parts, chunk_rows=11)
+    for k in reversed(range(f.n_parts)):
+        f.write_part(k)
+    f.join()
     assert t.meta["seed"] == 3
     assert (tmp_path / "rows.ecsv").read_bytes() == astropy_bytes(t, tmp_path / "ref.ecsv")
 

@@ -526,10 +526,15 @@ def test_map_tasks_raises_a_task_error_in_this_process():
         map_tasks(partial(_square_or_fail, 7), 20, 2, what="testing")
 
 
-def test_run_directory_written_with_two_workers_is_the_same(reference, tmp_path):
-    # the figures are drawn by a forked process while this one writes the rest
+def test_run_directory_written_with_two_workers_is_the_same(reference, tmp_path,
+                                                           monkeypatch):
+    # two workers share the figures, the histories, the catalogues in parts of rows (here
+    # of ~40 rows: several per catalogue) and the rest; no part is left behind
+    from bhgrow import pipeline
     from bhgrow.pipeline import write_run
 
+    monkeypatch.setattr(pipeline, "ECSV_PART_ROWS", 40)
+    assert len(reference.black_holes) > 3 * 40 and len(reference.mergers) > 3 * 40
     cfg = from_table({"run": {**FAST, "chunk_nodes": 10**9}})
     one = write_run(reference, cfg, tmp_path / "one", workers=1)
     two = write_run(reference, cfg, tmp_path / "two", workers=2)

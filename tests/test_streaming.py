@@ -250,19 +250,26 @@ def test_run_directories_and_tables_are_identical(files, demo, tmp_path, monkeyp
                 np.testing.assert_array_equal(a[k][()], b[k][()], err_msg=k)
 
 
-def test_catalogues_written_in_slices_equal_one_write(eager, tmp_path, monkeypatch):
-    """write_run formats big catalogues a slice of rows at a time (bounded memory)."""
-    from bhgrow import pipeline
-    from bhgrow.output import write_ecsv
+@pytest.mark.parametrize("parts", [1, 2, 5, 10**6])
+def test_catalogues_written_in_slices_and_parts_equal_one_write(eager, tmp_path, parts):
+    """write_run formats big catalogues a slice of rows at a time (bounded memory), and
+    with several workers in parts of rows written at once (EcsvFile): the same bytes."""
+    from bhgrow.output import EcsvFile, write_ecsv
 
-    monkeypatch.setattr(pipeline, "ECSV_ROWS", 37)
     for name in ("black_holes", "mergers", "pending"):
         table = getattr(eager, name)
         assert len(table) > 3 * 37, name
         write_ecsv(table.copy(), tmp_path / "whole.ecsv", meta={"seed": 3})
-        pipeline._write_ecsv_rows(table.copy(), tmp_path / "sliced.ecsv", meta={"seed": 3})
+        f = EcsvFile(table.copy(), tmp_path / "sliced.ecsv", meta={"seed": 3}, parts=parts,
+                     chunk_rows=37)
+        assert f.n_parts == min(parts, len(table))
+        for k in np.random.default_rng(parts).permutation(f.n_parts):   # any order
+            f.write_part(int(k))
+        f.join()
         assert ((tmp_path / "whole.ecsv").read_bytes()
                 == (tmp_path / "sliced.ecsv").read_bytes()), name
+        assert sorted(p.name for p in tmp_path.iterdir()) == ["sliced.ecsv", "whole.ecsv"]
+        (tmp_path / "sliced.ecsv").unlink()
 
 
 # ------------------------------------------------------------------ checkpoints
