@@ -604,10 +604,21 @@ def run(config=None, *, trees=None, out=None, overwrite: bool = False,
         path = Path(trees) if trees is not None else demo_trees_path()
         if is_hdf5_path(path):
             # the file is checked before the run, by as many local workers as the run has;
-            # meanwhile this process sets up the cosmology (astropy's import: ~0.5 s)
-            forest = open_forests(path, check=False).check(
-                config.run.chunk_nodes, config.run.workers if workers is None else workers,
-                meanwhile=lambda: Cosmology.from_name(config.run.cosmology))
+            # meanwhile this process sets up the cosmology (astropy's import: ~0.5 s). A
+            # search for repeated ids keeps its scratch file beside the output (as the
+            # run's other scratch: the temporary directory may be in memory)
+            near = Path(out).parent if out is not None and Path(out).parent.is_dir() \
+                else None
+            scratch = tempfile.mkdtemp(prefix=f".{Checkpoint.directory_for(out).name}-ids-"
+                                       f"{os.getpid()}-", dir=near) if near else None
+            try:
+                forest = open_forests(path, check=False).check(
+                    config.run.chunk_nodes, config.run.workers if workers is None else workers,
+                    meanwhile=lambda: Cosmology.from_name(config.run.cosmology),
+                    scratch_dir=scratch)
+            finally:
+                if scratch is not None:
+                    shutil.rmtree(scratch, ignore_errors=True)
         else:
             forest = load_forest(path)
     partial = None

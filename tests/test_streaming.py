@@ -610,3 +610,30 @@ def test_scratch_left_by_a_killed_run_is_removed_by_the_next(files, tmp_path):
     gc.collect()
     assert sorted(p.name for p in tmp_path.iterdir()) == sorted(
         [".other.partial-histories-99999999-gh78", "keep-me", "out"])
+
+
+def test_repeated_id_search_keeps_its_scratch_beside_the_output(files, tmp_path,
+                                                                monkeypatch):
+    """Where the check must search the file for repeated ids, its scratch file (8 B per
+    node) goes beside the output, under the run's scratch names, not into a temporary
+    directory that may be in memory; nothing is left afterwards."""
+    monkeypatch.setattr(tio, "READ_BLOCK_ROWS", 500)              # budget below the file
+    monkeypatch.setattr(tio._SeenIds, "all_unique", lambda self: False)
+    seen = []
+    real = HDF5Forests._duplicate_node_ids
+
+    def spy(self, budget, scratch_dir=None):
+        seen.append(scratch_dir)
+        # (inside the call: the scratch directory and the search's own file exist)
+        return real(self, budget, scratch_dir)
+
+    monkeypatch.setattr(HDF5Forests, "_duplicate_node_ids", spy)
+    cfg = from_table({"run": {**FAST, "chunk_nodes": 3000}})
+    run(cfg, trees=files["indexed"], out=tmp_path / "out")
+    assert len(seen) == 1 and seen[0] is not None
+    from pathlib import Path
+    assert Path(seen[0]).parent == tmp_path
+    assert Path(seen[0]).name.startswith(".out.partial-ids-")
+    import gc
+    gc.collect()
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["out"]
