@@ -631,8 +631,8 @@ class HDF5Forests:
         other chunks are then found by streaming the ``node_id`` column
         (:class:`~bhgrow.trees.validate.ChunkedCheck`). Memory: one chunk. While the node
         ids seen so far span at most ``64 * max(max_nodes, READ_BLOCK_ROWS)`` values, one
-        flag bit per value (no more bytes than 8 ids of a chunk take) records them during
-        the chunk pass: ids found unique that way need no second pass over ``node_id``
+        flag bit per value (at most as many bytes as a chunk's ids take) records them
+        during the chunk pass: ids found unique that way need no second pass over ``node_id``
         (otherwise two, :meth:`_duplicate_node_ids`); a file of at most
         ``max(max_nodes, READ_BLOCK_ROWS)`` nodes keeps its ids from the pass.
 
@@ -713,8 +713,7 @@ class HDF5Forests:
         Two passes over ``node_id``, whatever the file's size: the first counts the ids per
         hash bucket, the second writes each id to its bucket's part of a scratch file
         (8 bytes per node, in ``scratch_dir``, default the system's temporary directory);
-        each bucket (about ``budget / 2``
-        ids) is then sorted alone. A repeated id always lands in one bucket. (Until
+        each bucket (about ``budget / 2`` ids) is then sorted alone. A repeated id always lands in one bucket. (Until
         2026-12-02 the ids were split into value ranges, each collected by its own pass
         over the column: ~n / budget passes, 8.8 s of a 20 s check at 2.15e7 nodes.)
         """
