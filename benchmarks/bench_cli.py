@@ -4,8 +4,8 @@
 times the command: start-up (imports), opening and checking the HDF5 forest file, the chunk
 runs (each worker reads its chunks from the file), merging the chunk results, the merger
 catalogue with its LISA SNRs, and writing the run directory (catalogues, histories, tables,
-figures, summary). The chunk runs, the file check and the figures are shared among the
-workers; the rest runs in one process, so the speed-up of the command is that of the chunk
+figures, summary). The chunk runs, the file check and the writing of the run directory are
+shared among the workers; the rest runs in one process, so the speed-up of the command is that of the chunk
 runs diluted by the rest (Amdahl's law: with a serial share
 ``s`` of the one-worker time, two workers give at most ``1 / (s + (1 - s) / 2)``).
 
@@ -20,9 +20,9 @@ round and the median of the per-round ratios is reported):
    imports, ``open_forests`` (reads the index and checks the whole file, while this
    process sets up the cosmology), ``run_model``
    split into the chunk runs and the rest (merging, catalogues, LISA SNRs), and
-   ``write_run`` (catalogues, histories, tables, summary and, drawn meanwhile by a forked
-   process when there are several workers, the figures). The file check and the figures
-   also use the workers.
+   ``write_run`` (catalogues, histories, tables, summary and figures: with several workers
+   one task list shared by them, the catalogues in parts of rows). The file check and the
+   writing also use the workers.
 
 The forest file: ``--trees FILE`` (a bhgrow HDF5 file), or by default the forest set of
 ``bench_balance.py`` built with ``--seed 11`` (17,000 toy forests + one 1e15 Msun cluster
