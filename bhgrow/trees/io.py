@@ -38,6 +38,7 @@ import json
 import os
 from functools import partial
 from pathlib import Path
+from typing import NamedTuple
 
 import numpy as np
 
@@ -633,8 +634,8 @@ class HDF5Forests:
         ids seen so far span at most ``64 * max(max_nodes, READ_BLOCK_ROWS)`` values, one
         flag bit per value (at most as many bytes as a chunk's ids take) records them
         during the chunk pass: ids found unique that way need no second pass over ``node_id``
-        (otherwise two, :meth:`_duplicate_node_ids`); a file of at most
-        ``max(max_nodes, READ_BLOCK_ROWS)`` nodes keeps its ids from the pass.
+        (otherwise one for a file of at most ``max(max_nodes, READ_BLOCK_ROWS)`` nodes, two
+        above, :meth:`_duplicate_node_ids`).
 
         With ``workers`` > 1 the chunks are read and checked by that many local processes
         (:func:`bhgrow.parallel.map_tasks`: this one and forked ones); the results, and so
@@ -657,37 +658,33 @@ class HDF5Forests:
         # ids held at once: a chunk, or a read block if more
         budget = max(int(max_nodes), int(READ_BLOCK_ROWS))
         seen = _SeenIds(8 * budget)
-        # a file of at most `budget` nodes: its ids are kept from the pass, not read again
-        kept = [] if self.n_nodes <= budget else None
 
-        def add(found, links, node_id):
+        def add(found, links, ids):
             chk.add_found(found, links)
-            seen.add(node_id)
-            if kept is not None:
-                kept.append(node_id)
+            seen.add(ids)
 
         chunks = list(self.chunk_ids(max_nodes))
+        # each chunk's ids come back as flag bits (or None where flags cannot hold them):
+        # from a worker, 1/64 of the bytes of the ids, which the parent (busy with
+        # `meanwhile`) would otherwise receive while that worker waited for its next chunk
+        task = partial(_check_chunk, self, chunks, self._snap_raw, self._z_raw, 8 * budget)
         if workers != 1 and len(chunks) > 1:
             from ..parallel import map_tasks
 
-            # results come back in file order, one chunk at a time (memory: their ids)
-            task = partial(_check_chunk, self, chunks, self._snap_raw, self._z_raw)
+            # results come back in file order, one chunk at a time
             map_tasks(task, len(chunks), workers, what=f"checking {self.source}",
                       done=lambda i, r: add(*r), meanwhile=meanwhile)
         else:
             if meanwhile is not None:
                 meanwhile()
             for i in range(len(chunks)):
-                add(*_check_chunk(self, chunks, self._snap_raw, self._z_raw, i))
+                add(*task(i))
         if chk.id_columns_ok():
             if seen.all_unique() and not chk.repeats_within_chunks():
                 chk.set_duplicates(np.zeros(0, np.int64))
-            elif kept is not None:
-                chk.set_duplicates(_repeated_ids(
-                    np.concatenate(kept).astype(np.int64, copy=False)))
             else:   # repeated ids, or too spread out to flag: found exactly by streaming
                 chk.set_duplicates(self._duplicate_node_ids(budget, scratch_dir))
-            kept = seen = None          # freed before the look-ups
+            seen = None                 # freed before the look-ups
             outside = chk.outside_descendants()
             if outside.size:
                 chk.resolve(*self._lookup_nodes(outside))
@@ -783,7 +780,8 @@ class _SeenIds:
     Parameters
     ----------
     max_bytes : int
-        Most bytes of flags held.
+        Bytes of flags: ids spanning ``8 * max_bytes`` values are held (in at most
+        ``max_bytes + 1`` bytes, the flags starting at a multiple of 8).
     """
 
     def __init__(self, max_bytes: int):
@@ -791,6 +789,8 @@ class _SeenIds:
         self.lo = 0
         #: flag of id ``lo + k``: bit ``k % 8`` of byte ``k // 8`` (numpy's "little" order)
         self.flags: np.ndarray | None = None
+        #: smallest and largest id recorded
+        self.id_lo = self.id_hi = 0
         self.dropped = False
         self.repeated = False
 
@@ -805,8 +805,15 @@ class _SeenIds:
         return np.flatnonzero(np.unpackbits(self.flags, bitorder="little")) + self.lo
 
     def add(self, values) -> None:
-        """Record the ids of one chunk (as stored in the file)."""
+        """Record the ids of one chunk: as stored in the file, or as returned by
+        :func:`_ids_for_flags` (None: ids the flags cannot hold)."""
         if self.dropped or self.repeated:
+            return
+        if values is None:
+            self._drop()
+            return
+        if isinstance(values, _IdBits):
+            self._add_bits(values)
             return
         arr = np.asarray(values)
         if arr.size == 0:
@@ -839,6 +846,17 @@ class _SeenIds:
                 return
             np.bitwise_or.at(self.flags, first + byte, bit)
 
+    def _add_bits(self, b: "_IdBits") -> None:
+        if not self._cover(b.lo, b.hi):
+            self._drop()
+            return
+        at = (b.base - self.lo) >> 3            # both multiples of 8 (see _cover)
+        held = self.flags[at:at + b.bits.size]
+        if (held & b.bits).any():
+            self._repeat()
+            return
+        held |= b.bits
+
     def _repeat(self) -> None:
         self.repeated = True           # the exact list comes from the streaming search
         self.flags = None
@@ -847,40 +865,84 @@ class _SeenIds:
         self.dropped, self.flags = True, None
 
     def _cover(self, lo: int, hi: int) -> bool:
-        """Grow the flags to cover ids ``lo..hi``; False if that needs too many."""
+        """Grow the flags to cover ids ``lo..hi``; False if the ids recorded would then
+        span more than ``8 * max_bytes`` values.
+
+        The flags start at a multiple of 8, so the bytes of a chunk's :class:`_IdBits`
+        line up with theirs, and hold at most ``max_bytes + 1`` bytes.
+        """
         cap = 8 * self.max_bytes
-        if self.flags is None:
-            if hi - lo + 1 > cap:
-                return False
-            self.lo, self.flags = lo, np.zeros((hi - lo) // 8 + 1, dtype=np.uint8)
-            return True
-        cur_lo, cur_hi = self.lo, self.lo + 8 * self.flags.size - 1
-        if lo >= cur_lo and hi <= cur_hi:
-            return True
-        new_lo, new_hi = min(lo, cur_lo), max(hi, cur_hi)
-        # room to spare on the side that grew (ids often rise chunk by chunk): few copies;
-        # the low end moves by whole bytes, so the flags held keep their bits
-        room = 8 * self.flags.size
-        lo2 = max(new_lo - room, -2**63) if lo < cur_lo else new_lo
-        hi2 = min(new_hi + room, 2**63 - 1) if hi > cur_hi else new_hi
-        if hi2 - lo2 + 1 > cap:
-            lo2, hi2 = new_lo, new_hi
-        lo2 = cur_lo - 8 * -(-(cur_lo - lo2) // 8)
-        if lo2 < -2**63 or hi2 - lo2 + 1 > cap:
+        old = self.flags
+        s_lo, s_hi = (lo, hi) if old is None else (min(lo, self.id_lo), max(hi, self.id_hi))
+        if s_hi - s_lo + 1 > cap:
             return False
-        flags = np.zeros((hi2 - lo2) // 8 + 1, dtype=np.uint8)
-        at = (cur_lo - lo2) // 8
-        flags[at:at + self.flags.size] = self.flags
-        self.lo, self.flags = lo2, flags
+        if old is not None:
+            cur_lo, cur_hi = self.lo, self.lo + 8 * old.size - 1
+            if lo >= cur_lo and hi <= cur_hi:
+                self.id_lo, self.id_hi = s_lo, s_hi
+                return True
+        # the ids' span, with room to spare on the one side that grew (ids often rise chunk
+        # by chunk: few copies), within the capacity
+        lo2, hi2 = s_lo, s_hi
+        if old is not None and lo < cur_lo and hi <= cur_hi:
+            lo2 = max(s_lo - (s_hi - s_lo + 1), s_hi - cap + 1, -2**63)
+        elif old is not None and hi > cur_hi and lo >= cur_lo:
+            hi2 = min(s_hi + (s_hi - s_lo + 1), s_lo + cap - 1, 2**63 - 1)
+        base = lo2 - lo2 % 8
+        flags = np.zeros((hi2 - base) // 8 + 1, dtype=np.uint8)
+        if old is not None:
+            # the bytes holding the ids recorded so far (both arrays start at multiples of 8)
+            i0, i1 = (self.id_lo - cur_lo) // 8, (self.id_hi - cur_lo) // 8 + 1
+            at = (cur_lo - base) // 8
+            flags[at + i0:at + i1] = old[i0:i1]
+        self.lo, self.flags = base, flags
+        self.id_lo, self.id_hi = s_lo, s_hi
         return True
 
 
-def _check_chunk(forests: HDF5Forests, chunks: list, snap_nums, snap_z, index: int):
+def _check_chunk(forests: HDF5Forests, chunks: list, snap_nums, snap_z, max_bits: int,
+                 index: int):
     """Read chunk ``index`` of ``chunks`` and check it alone (a task of
-    :meth:`HDF5Forests.check`): ``(problems, links, node_id)``."""
+    :meth:`HDF5Forests.check`): ``(problems, links, ids)`` with ``ids`` the chunk's node
+    ids for :class:`_SeenIds` of ``max_bits`` flags (:func:`_ids_for_flags`)."""
     cols, rows = forests.read_columns(chunks[index], rows=True)
     found, links = ChunkedCheck.check_chunk(cols, snap_nums, snap_z, rows)
-    return found, links, cols["node_id"]
+    return found, links, _ids_for_flags(cols["node_id"], max_bits)
+
+
+class _IdBits(NamedTuple):
+    """A chunk's node ids as flag bits: id ``base + k`` is bit ``k % 8`` of byte
+    ``bits[k // 8]`` (numpy's "little" order); ``base`` is a multiple of 8, ``lo`` and
+    ``hi`` the smallest and largest id."""
+
+    lo: int
+    hi: int
+    base: int
+    bits: np.ndarray
+
+
+def _ids_for_flags(node_id, max_bits: int):
+    """What :meth:`_SeenIds.add` needs of a chunk's ids (as stored in the file): the ids
+    as :class:`_IdBits` where their range is dense enough (at most one byte of bits per
+    id); None where the flags could not hold them anyway (not integers, or a range
+    above ``max_bits`` values); else the ids as int64. Repeats within the chunk are not
+    kept (:class:`~bhgrow.trees.validate.ChunkedCheck` finds those)."""
+    arr = np.asarray(node_id)
+    if arr.size == 0:
+        return np.zeros(0, np.int64)
+    if arr.dtype.kind not in "iu" or (arr.dtype.kind == "u"
+                                       and arr.max() > np.iinfo(np.int64).max):
+        return None
+    ids = arr.astype(np.int64, copy=False)
+    lo, hi = int(ids.min()), int(ids.max())
+    if hi - lo + 1 > max_bits:
+        return None
+    base = lo - lo % 8
+    if (hi - base) // 8 + 1 > ids.size:
+        return ids
+    flags = np.zeros(hi - base + 1, dtype=bool)
+    flags[ids - np.int64(base)] = True
+    return _IdBits(lo, hi, base, np.packbits(flags, bitorder="little"))
 
 
 def open_forests(path, *, check: bool = True, max_nodes: int = 2_000_000,

@@ -8,9 +8,10 @@
   masses, equal masses, huge or sparse ids, an empty forest).
 * ``find_problems``: the look-up table path reports exactly what the sort-and-search path
   (the previous code, still used for sparse or repeated ids) reports.
-* ``HDF5Forests.check``: repeated node ids found from the flags of the chunk pass, from
-  the ids kept from the pass, or by streaming the file again (the previous way) give the
-  same verdict and message; with dense unique ids the ``node_id`` column is read once.
+* ``HDF5Forests.check``: repeated node ids found from the flags of the chunk pass (the
+  chunks' ids handed over as flag bits or as ids), or by reading the file's ``node_id``
+  again (one pass for a file within the budget, two above) give the same verdict and
+  message; with dense unique ids the ``node_id`` column is read once.
 """
 
 from __future__ import annotations
@@ -369,11 +370,59 @@ def test_seen_ids_bits_against_a_set(spread):
             assert not seen.all_unique() and seen.flags is None
 
 
+@pytest.mark.parametrize("spread", [1, 3, 9, 50])
+def test_seen_ids_from_chunk_bits_against_a_set(spread):
+    # a check's chunks hand their ids over as _ids_for_flags makes them: flag bits for
+    # ids dense enough (at most a byte per id: spread <= 8), the ids otherwise; mixed
+    # with raw ids, the flags record exactly the set added, and a repeat across chunks
+    # is seen either way
+    rng = np.random.default_rng(100 + spread)
+    for trial in range(30):
+        n = int(rng.integers(1, 3000))
+        ids = rng.choice(n * spread + 5, size=n, replace=False) + int(rng.integers(-99, 99))
+        parts = np.array_split(ids if trial % 3 else np.sort(ids)[::-1],
+                               int(rng.integers(1, 7)))
+        seen = _SeenIds(10**6)
+        for k, part in enumerate(parts):
+            given = tio._ids_for_flags(part, 8 * 10**6) if (k + trial) % 4 else part
+            if part.size and spread <= 4 and given is not part:
+                assert isinstance(given, tio._IdBits)
+                assert given.bits.nbytes <= part.size and given.base % 8 == 0
+            seen.add(given)
+        assert seen.all_unique()
+        np.testing.assert_array_equal(seen.recorded(), np.sort(ids))
+        if len(parts) > 1 and parts[0].size:
+            again = np.r_[ids.max() + 1 + np.arange(40), parts[0][0]]
+            seen.add(tio._ids_for_flags(again, 8 * 10**6))
+            assert not seen.all_unique() and seen.flags is None
+
+
+def test_ids_for_flags_forms():
+    assert isinstance(tio._ids_for_flags(np.arange(100) * 2, 10**6), tio._IdBits)
+    np.testing.assert_array_equal(tio._ids_for_flags(np.arange(100) * 50, 10**6),
+                                  np.arange(100) * 50)         # too sparse for bits
+    assert tio._ids_for_flags(np.array([0, 10**6]), 10**6) is None       # beyond capacity
+    assert tio._ids_for_flags(np.array([1.0, 2.0]), 10**6) is None       # not integers
+    assert tio._ids_for_flags(np.array([2**64 - 1], dtype=np.uint64), 10**6) is None
+    b = tio._ids_for_flags(np.array([-2**63 + 3, -2**63 + 9]), 10**6)
+    assert b.base == -2**63 and b.lo == -2**63 + 3 and b.hi == -2**63 + 9
+    seen = _SeenIds(1000)
+    seen.add(b)
+    np.testing.assert_array_equal(seen.recorded(), [-2**63 + 3, -2**63 + 9])
+    seen.add(None)                                              # a chunk flags cannot hold
+    assert not seen.all_unique()
+
+
 def test_seen_ids_capacity_is_eight_ids_per_byte():
     seen = _SeenIds(1000)
     seen.add(np.array([5, 5 + 7999]))                       # 8000 values: fits
     assert seen.all_unique()
     seen.add(np.array([4]))                                 # 8001: does not
+    assert not seen.all_unique()
+    seen = _SeenIds(1000)                                   # the same with chunk bits
+    seen.add(tio._ids_for_flags(np.array([5, 5 + 7999]), 8000))
+    assert seen.all_unique() and seen.flags.nbytes <= 1001
+    seen.add(tio._ids_for_flags(np.array([4]), 8000))
     assert not seen.all_unique()
 
 
@@ -439,8 +488,8 @@ def test_check_finds_repeated_ids_as_the_streaming_search(ids, repeat, tmp_path,
     real_set = tval.ChunkedCheck.set_duplicates
     monkeypatch.setattr(tval.ChunkedCheck, "set_duplicates",
                         lambda self, d: got_dups.append(np.asarray(d)) or real_set(self, d))
-    # the three ways: flags (or ids kept from the pass), ids kept, streaming the file
-    monkeypatch.setattr(tio, "READ_BLOCK_ROWS", 1 << 20)        # budget >= n: ids kept
+    # the three ways: flags, the file's ids read again at once, streaming them in buckets
+    monkeypatch.setattr(tio, "READ_BLOCK_ROWS", 1 << 20)        # budget >= n: one read
     verdicts = [_verdict(path, max_nodes)]
     monkeypatch.setattr(tio._SeenIds, "all_unique", lambda self: False)
     verdicts.append(_verdict(path, max_nodes))
