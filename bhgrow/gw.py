@@ -587,8 +587,12 @@ def snr_observed_frame(m1_obs_msun, m2_obs_msun, d_l_mpc, noise: LISANoise, *,
         w = 0.5 * math.pi * sg * (fr / fm) ** (-2.0 / 3.0)
         lor = sg[:, None] / (2.0 * math.pi * ((fq - fr[:, None]) ** 2 + 0.25 * (sg * sg)[:, None]))
         integrand = (w[:, None] * lor) ** 2 / noise.sensitivity(fq)
-        # C^2 = pref^2 f_merg^(-7/3)
-        ring_flat[np.flatnonzero(ok) + start] = (integrand @ wg) * half * fm ** (-7.0 / 3.0)
+        # C^2 = pref^2 f_merg^(-7/3); the nodes summed in a fixed order (a matrix product's
+        # order depends on the batch, so one event's SNR would depend on the others')
+        quad = integrand[:, 0] * wg[0]
+        for j in range(1, wg.size):
+            quad += integrand[:, j] * wg[j]
+        ring_flat[np.flatnonzero(ok) + start] = quad * half * fm ** (-7.0 / 3.0)
     with np.errstate(invalid="ignore"):
         total = ins + mer + ring
         rho2 = (16.0 / 5.0) * np.where(total > 0, pref2 * total, 0.0)

@@ -595,22 +595,25 @@ def _sub_forest(forest, ids):
     return forest.select_forests(ids)
 
 
-def run_one_chunk(forest, ids, model, run, cosmo):
+def run_one_chunk(forest, ids, model, run, cosmo, finish=None):
     """Run the engine on the forests ``ids`` of ``forest`` (a Forest, or an HDF5Forests
-    to read them from); a compact EngineResult."""
+    to read them from); a compact EngineResult, passed through ``finish(result, cosmo)``
+    if given (per-chunk products made where the chunk ran, see :func:`run_chunks`)."""
     t0 = time.perf_counter()
     res = compact_result(engine.run_forest(_sub_forest(forest, ids), model, run, cosmo))
+    if finish is not None:
+        res = finish(res, cosmo)
     return replace(res, chunk_s=time.perf_counter() - t0)
 
 
-def _plan_chunk(forest, plan, model, run, cosmo, save_dir, index: int, ids=None):
+def _plan_chunk(forest, plan, model, run, cosmo, save_dir, finish, index: int, ids=None):
     """Chunk ``index`` of ``plan`` (a task of :func:`_run_pool`; a forked worker is handed
     the chunk's current forest ``ids``, since a re-plan is not seen by its copy of
     ``plan``), saved into checkpoint directory ``save_dir`` if given (by the process that
     ran it: the workers write their chunks in parallel, not one after the other in the
     parent)."""
     ids = plan[index] if ids is None else ids
-    r = run_one_chunk(forest, ids, model, run, cosmo)
+    r = run_one_chunk(forest, ids, model, run, cosmo, finish)
     if save_dir is not None:
         save_chunk(save_dir, index, ids, r)
     return r
@@ -644,8 +647,8 @@ def _worker_task(index: int, arg=None):
     return index, (_Saved() if _WORKER["saved"] else r)
 
 
-def _dask_chunk(index: int, sub, model, run, cosmo):
-    return index, run_one_chunk(sub, sub.forest_ids, model, run, cosmo)
+def _dask_chunk(index: int, sub, model, run, cosmo, finish=None):
+    return index, run_one_chunk(sub, sub.forest_ids, model, run, cosmo, finish)
 
 
 def default_start_method() -> str:
@@ -689,7 +692,7 @@ def dask_slots(client) -> int:
 def run_chunks(forest, plan: list, model, run, cosmo, *, workers: int = 1, client=None,
                checkpoint: Checkpoint | None = None, progress: bool = False,
                start_method: str | None = None, refiner: CostRefiner | None = None,
-               on_result=None) -> list:
+               on_result=None, finish=None) -> list:
     """Run every chunk of ``plan``; the EngineResults in plan order.
 
     Parameters
@@ -723,6 +726,11 @@ def run_chunks(forest, plan: list, model, run, cosmo, *, workers: int = 1, clien
         ``on_result(i, result) -> result`` for each chunk as it arrives (also for those
         reused from the checkpoint), in this process; what it returns is kept (the
         pipeline moves the chunk's histories to disk there).
+    finish : callable, optional
+        ``finish(result, cosmo) -> result``, run on each chunk's result where the chunk
+        ran (in the worker; with Dask on the cluster, so it must be picklable there), before
+        it is saved or sent: per-event products that depend on the event alone (the
+        pipeline's LISA SNR of each merger), made in parallel.
 
     Returns
     -------
@@ -772,16 +780,17 @@ def run_chunks(forest, plan: list, model, run, cosmo, *, workers: int = 1, clien
             pass
         elif client is not None:
             open_bar()
-            _run_dask(client, forest, plan, todo, model, run, cosmo, done, refresh)
+            _run_dask(client, forest, plan, todo, model, run, cosmo, done, refresh, finish)
         elif n_proc <= 1:
             open_bar()
             for i in todo:
-                done(i, run_one_chunk(forest, plan[i], model, run, cosmo))
+                done(i, run_one_chunk(forest, plan[i], model, run, cosmo, finish))
         else:
             kept = (f"; finished chunks are kept in {checkpoint.directory}: rerun with "
                     f"--resume" if checkpoint is not None else "")
             save_dir = checkpoint.directory if checkpoint is not None else None
-            _run_pool(n_proc, partial(_plan_chunk, forest, plan, model, run, cosmo, save_dir),
+            _run_pool(n_proc, partial(_plan_chunk, forest, plan, model, run, cosmo, save_dir,
+                                      finish),
                       todo, partial(done, saved=save_dir is not None), open_bar,
                       start_method or default_start_method(),
                       f"running chunks of whole forests{kept}", saved=save_dir is not None,
@@ -944,7 +953,8 @@ def _run_pool(n_proc, task, todo, done, started, start_method, what, *,
     pool.shutdown(wait=True)
 
 
-def _run_dask(client, forest, plan, todo, model, run, cosmo, done, refresh=None) -> None:
+def _run_dask(client, forest, plan, todo, model, run, cosmo, done, refresh=None,
+              finish=None) -> None:
     from dask.distributed import as_completed
 
     window = 2 * dask_slots(client)    # sub-forests in flight (bounds the parent's memory)
@@ -953,7 +963,7 @@ def _run_dask(client, forest, plan, todo, model, run, cosmo, done, refresh=None)
 
     def submit(i):
         [sub] = client.scatter([_sub_forest(forest, plan[i])], hash=False)
-        return client.submit(_dask_chunk, i, sub, model, run, cosmo, pure=False,
+        return client.submit(_dask_chunk, i, sub, model, run, cosmo, finish, pure=False,
                              key=f"bhgrow-chunk-{i:05d}-{token}")
 
     def next_index():

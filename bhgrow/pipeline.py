@@ -10,6 +10,7 @@ import time
 import weakref
 from collections.abc import Mapping
 from dataclasses import dataclass
+from functools import partial
 from pathlib import Path
 
 import numpy as np
@@ -275,9 +276,12 @@ def run_model(forest: "Forest | HDF5Forests", config: Config | None = None, *,
             cat.add(r)
             return r
 
+        # each merger's LISA SNR is made where its chunk runs (in parallel; it depends on
+        # the event alone, so it is the same for any plan)
         results = par.run_chunks(forest, plan, config.model, config.run, cosmo,
                                  workers=workers, client=client, checkpoint=ckpt,
-                                 progress=progress, refiner=refiner, on_result=spill)
+                                 progress=progress, refiner=refiner, on_result=spill,
+                                 finish=partial(chunk_lisa_snr, config.gw))
     finally:
         if owned:
             client.close()
@@ -303,12 +307,9 @@ def run_model(forest: "Forest | HDF5Forests", config: Config | None = None, *,
     baryons["ok"] = bool(baryons["max_relative_excess"] <= baryons["tolerance"])
     n_seeds = {k: sum(r.n_seeds[k] for r in results) for k in results[0].n_seeds}
     mergers = _merger_table(cat, weights_of, DiskTable(scratch("mergers"))
-                            if several and cat.n_mergers else None)
-    from .products import merger_snr
-
-    _put(mergers, merger_snr(mergers, cosmo, config.gw), "lisa_snr",
-         description=f"sky-averaged LISA SNR ({config.gw.waveform}, "
-                     f"{config.gw.mission_yr:g}-yr mission)")
+                            if several and cat.n_mergers else None,
+                            snr_description=f"sky-averaged LISA SNR ({config.gw.waveform}, "
+                                            f"{config.gw.mission_yr:g}-yr mission)")
     status = cat.bh("status")
     pending = _pending_table(cat, order[status[order] == SINKING], weights_of, cosmo)
     n_ejected = int(np.isin(status, (EJECTED, EJECTED_TRIPLE)).sum())
@@ -429,20 +430,22 @@ def _black_hole_catalogue(cat: _ChunkCatalogues, weights_of, table) -> np.ndarra
     return order
 
 
-def _merger_table(cat: _ChunkCatalogues, weights_of, table=None):
+def _merger_table(cat: _ChunkCatalogues, weights_of, table=None, *, snr_description=""):
     """The mergers sorted by time, then secondary id (unique: a hole is absorbed once), in
-    ``table`` (a DiskTable) or a new astropy Table, a column at a time."""
+    ``table`` (a DiskTable) or a new astropy Table, a column at a time; the LISA SNR
+    (made with each chunk, :func:`chunk_lisa_snr`) last."""
     from astropy.table import Table
 
+    columns = _MERGER_COLUMNS + [("lisa_snr", None, snr_description)]
     if not cat.n_mergers:
         # no rows, but the columns, types, units and descriptions of a run with mergers
         t = Table()
-        for name, unit, d in _MERGER_COLUMNS:
+        for name, unit, d in columns:
             _put(t, np.zeros(0, dtype=_MERGER_DTYPES.get(name, np.float64)), name, unit, d)
         return t
     t = Table() if table is None else table
     order = np.lexsort((cat.merger("bh_id_2"), cat.merger("t_gyr")))
-    for name, unit, d in _MERGER_COLUMNS:
+    for name, unit, d in columns:
         if name == "weight_mpc3":
             col = weights_of(cat.merger("forest_id")[order])
         elif name.startswith("seed_channel"):
@@ -452,6 +455,18 @@ def _merger_table(cat: _ChunkCatalogues, weights_of, table=None):
         _put(t, col, name, unit, d)
         del col
     return t
+
+
+def chunk_lisa_snr(settings, result, cosmo):
+    """Add each merger's sky-averaged LISA SNR (:func:`bhgrow.products.merger_snr`) to a
+    chunk's merger records, as ``lisa_snr``: done where the chunk ran
+    (:func:`bhgrow.parallel.run_chunks`, ``finish``), in parallel. An event's SNR depends on
+    that event alone, so it is the same for any chunk plan (tested)."""
+    if result.mergers:
+        from .products import merger_snr
+
+        result.mergers["lisa_snr"] = merger_snr(result.mergers, cosmo, settings)
+    return result
 
 
 def _pending_table(cat: _ChunkCatalogues, rows, weights_of, cosmo):
@@ -528,8 +543,6 @@ def write_run(result: RunResult, config: Config, out, *, overwrite: bool = False
     the catalogues in parts of rows (joined here afterwards) and the rest; the files are
     the same, byte for byte, as with one.
     """
-    from functools import partial
-
     from .parallel import default_start_method, n_local_workers, run_tasks
 
     n_proc = n_local_workers(config.run.workers if workers is None else workers)

@@ -307,6 +307,24 @@ def test_snr_vectorized_edges(cosmo):
         gw.snr_observed_frame(1e5, 1e5, 1e3, noise, waveform="phenomD")
 
 
+@pytest.mark.parametrize("snr", ["inspiral_snr", "imr_snr"])
+def test_snr_of_an_event_does_not_depend_on_the_others_in_the_call(cosmo, snr):
+    # the pipeline computes each merger's SNR with its chunk (bhgrow.pipeline.chunk_lisa_snr):
+    # the value must be the same, bit for bit, whichever events share the call (the
+    # ringdown quadrature was a matrix product, whose summation order follows the batch)
+    noise = gw.LISANoise()
+    rng = np.random.default_rng(7)
+    n = 12_000                                     # above the ringdown's block of 8192
+    m1 = 10 ** rng.uniform(3, 9, n)
+    m2 = m1 * rng.uniform(0.01, 1.0, n)
+    z = rng.uniform(0.01, 15.0, n)
+    f = getattr(gw, snr)
+    full = f(m1, m2, z, cosmo, noise)
+    for size in (1, 7, 1000, 8191, 8193, 11_999):
+        idx = np.sort(rng.choice(n, size=size, replace=False))
+        np.testing.assert_array_equal(f(m1[idx], m2[idx], z[idx], cosmo, noise), full[idx])
+
+
 def test_detections_threshold():
     snr = np.array([0.0, 7.99, 8.0, 100.0])
     np.testing.assert_array_equal(gw.detections(snr), [False, False, True, True])

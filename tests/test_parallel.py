@@ -228,6 +228,20 @@ def test_workers_and_chunking_do_not_change_results(sub, reference):
     assert_same(reference, three)
 
 
+def test_lisa_snr_made_with_the_chunks_equals_one_call_on_the_catalogue(reference):
+    # each chunk adds its mergers' SNRs where it ran; the catalogue's column is what one
+    # call on the whole catalogue gives, bit for bit (and, by the test above, for any plan)
+    from bhgrow.cosmology import Cosmology
+    from bhgrow.products import merger_snr
+
+    cfg = from_table({"run": FAST})
+    m = reference.mergers
+    assert len(m) > 10 and m.colnames[-1] == "lisa_snr"
+    whole = merger_snr(m, Cosmology.from_name(cfg.run.cosmology), cfg.gw)
+    np.testing.assert_array_equal(np.asarray(m["lisa_snr"]), whole)
+    assert np.all(np.isfinite(whole)) and np.any(whole > 0)
+
+
 def test_histories_of_several_chunks_are_kept_on_disk(sub, reference, tmp_path):
     # each chunk's histories go to disk when it is done (beside the run's checkpoint); the
     # run directory's histories file equals a one-chunk run's, and the result still reads
