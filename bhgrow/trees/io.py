@@ -638,8 +638,9 @@ class HDF5Forests:
         above, :meth:`_duplicate_node_ids`).
 
         With ``workers`` > 1 the chunks are read and checked by that many local processes
-        (:func:`bhgrow.parallel.map_tasks`: this one and forked ones); the results, and so
-        the messages, are the same as with one. Memory: one chunk per worker.
+        (:func:`bhgrow.parallel.map_tasks`: this one and forked ones), in at least four
+        chunks per worker; the results, and so the messages, are the same as with one.
+        Memory: one chunk per worker.
         ``meanwhile()``, if given, runs in this process while the other workers check their
         first chunks (the caller's own set-up, :func:`bhgrow.parallel.map_tasks`).
         ``scratch_dir``: where the search for repeated ids, if needed, keeps its scratch
@@ -664,13 +665,20 @@ class HDF5Forests:
             seen.add(ids)
 
         chunks = list(self.chunk_ids(max_nodes))
+        parallel = workers != 1 and len(chunks) > 1
+        if parallel:
+            from ..parallel import map_tasks, n_local_workers
+
+            # at least 4 chunks per worker: the last ones end close together, and a
+            # process's first chunk (its memory still to fault in) is smaller
+            n_tasks = 4 * n_local_workers(workers)
+            if len(chunks) < n_tasks:
+                chunks = list(self.chunk_ids(max(1, -(-self.n_nodes // n_tasks))))
         # each chunk's ids come back as flag bits (or None where flags cannot hold them):
         # from a worker, 1/64 of the bytes of the ids, which the parent (busy with
         # `meanwhile`) would otherwise receive while that worker waited for its next chunk
         task = partial(_check_chunk, self, chunks, self._snap_raw, self._z_raw, 8 * budget)
-        if workers != 1 and len(chunks) > 1:
-            from ..parallel import map_tasks
-
+        if parallel:
             # results come back in file order, one chunk at a time
             map_tasks(task, len(chunks), workers, what=f"checking {self.source}",
                       done=lambda i, r: add(*r), meanwhile=meanwhile)
