@@ -594,7 +594,7 @@ class HDF5Forests:
                        "weight_mpc3": self.forest_weight[self._positions(ids)]}
         return Forest.from_columns(cols, self._snap_raw, self._z_raw, box_mpc=self.box_mpc,
                                    forest_weight=weights, meta=dict(self.meta),
-                                   source=self.source, check=not self.checked)
+                                   source=self.source, check=not self.checked, consume=True)
 
     def in_file_order(self, ids) -> np.ndarray:
         """The forest ids ``ids`` in the order their rows come in the file (by id if the

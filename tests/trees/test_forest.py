@@ -60,3 +60,29 @@ def test_row_order_and_progenitors_equal_full_lexsorts(shuffle):
     np.testing.assert_array_equal(g.prog_index, full)
     # and the descendant rows point at the right ids
     np.testing.assert_array_equal(g.node_id[g.desc_index[has]], g.desc_id[has])
+
+
+@pytest.mark.parametrize("shuffle", [False, True])
+def test_from_columns_consuming_its_columns_builds_the_same_forest(shuffle):
+    # a reader hands over its freshly read columns (consume=True): each is dropped from the
+    # dict once taken in row order, and the forest is the same, array for array, as from
+    # columns kept by the caller (both orderings: bhgrow's file order and shuffled rows)
+    from bhgrow.trees.toy import toy_forest
+
+    f = toy_forest(60, seed=9, n_snap=15, box_mpc=30.0)
+    rows = np.random.default_rng(4).permutation(f.n_nodes) if shuffle else np.arange(f.n_nodes)
+    cols = _columns(f, rows)
+    cols["j_lw"] = np.linspace(0.0, 50.0, f.n_nodes)[rows]       # an optional column
+    keep = Forest.from_columns(dict(cols), f.snapshots.snap, f.snapshots.z, box_mpc=30.0)
+    given = dict(cols)
+    used = Forest.from_columns(given, f.snapshots.snap, f.snapshots.z, box_mpc=30.0,
+                               consume=True)
+    assert given == {}                                          # every column taken
+    assert list(used.extra) == list(keep.extra) == ["j_lw"]
+    for name in ("node_id", "desc_id", "forest_id", "snap", "mass_msun", "desc_index",
+                 "prog_index", "prog_offsets", "main_prog", "snap_offsets", "forest_index"):
+        a, b = getattr(used, name), getattr(keep, name)
+        assert a.dtype == b.dtype, name
+        np.testing.assert_array_equal(a, b, err_msg=name)
+    np.testing.assert_array_equal(used.extra["j_lw"], keep.extra["j_lw"])
+    np.testing.assert_array_equal(cols["node_id"], f.node_id[rows])   # the caller's copy intact
