@@ -181,21 +181,19 @@ class Forest:
             snap[order], forest_id[order], node_id[order])
         del node_id, forest_id, snap, in_order
 
-        def taken(name, dtype):
-            """Column ``name`` in row order (given up by ``columns`` if ``consume``)."""
-            out = column(name, dtype)[order]
-            if consume:
-                del columns[name]
-            return out
-
         if consume:
             for name in ("node_id", "forest_id", "snap"):
                 del columns[name]
-        desc_o = taken("desc_id", np.int64)
-        mass_o = taken("mass_msun", np.float64)
-        extra = {k: taken(k, np.float64) for k in list(columns)
-                 if k in OPTIONAL_COLUMNS and k != "weight_mpc3"}
+        # the other columns in row order, each given up by `columns` once taken if `consume`
+        taken = {}
+        for name in ["desc_id", "mass_msun"] + [k for k in columns if k in OPTIONAL_COLUMNS
+                                                  and k != "weight_mpc3"]:
+            taken[name] = column(name, np.int64 if name == "desc_id" else np.float64)[order]
+            if consume:
+                del columns[name]
         del order
+        desc_o, mass_o = taken.pop("desc_id"), taken.pop("mass_msun")
+        extra = taken
         if forest_weight is not None:
             weights = _align_forest_weights(fids, forest_weight, source)
         if box_mpc is not None:
