@@ -347,53 +347,39 @@ def test_seen_ids_drop_when_the_range_grows_too_far():
     assert not seen.all_unique() and seen.flags is None
 
 
-@pytest.mark.parametrize("spread", [1, 3, 50])           # dense chunks .. scattered ones
-def test_seen_ids_bits_against_a_set(spread):
+@pytest.mark.parametrize("spread", [1, 3, 9, 50])        # dense chunks .. scattered ones
+@pytest.mark.parametrize("handover", ["ids", "mixed"])
+def test_seen_ids_bits_against_a_set(spread, handover):
     # the flag bits record exactly the set of ids added, whichever way a chunk is
     # flagged (unpacked bytes for dense chunks, bitwise_or.at for scattered ones) and
-    # however the flags grow (down by amounts that are not whole bytes, up, both)
-    rng = np.random.default_rng(spread)
+    # however the flags grow (down by amounts that are not whole bytes, up, both).
+    # "mixed": some chunks handed over as a check's workers make them (_ids_for_flags:
+    # flag bits where the ids are dense enough, at most a byte per id, i.e. spread <= 8;
+    # the ids otherwise), the others as ids
+    rng = np.random.default_rng(spread + (100 if handover == "mixed" else 0))
     for trial in range(20):
         n = int(rng.integers(1, 4000))
         ids = rng.choice(n * spread + 17, size=n, replace=False) + int(rng.integers(-999, 999))
         parts = np.array_split(ids if trial % 2 else np.sort(ids)[::-1],
                                int(rng.integers(1, 9)))
         seen = _SeenIds(10**6)
-        for p in parts:
-            seen.add(p)
+        for k, part in enumerate(parts):
+            given = part
+            if handover == "mixed" and (k + trial) % 4:
+                given = tio._ids_for_flags(part, 8 * 10**6)
+                if part.size:
+                    lo = int(part.min())
+                    dense = (int(part.max()) - (lo - lo % 8)) // 8 + 1 <= part.size
+                    assert isinstance(given, tio._IdBits) == dense
+                    if dense:
+                        assert given.bits.nbytes <= part.size and given.base % 8 == 0
+            seen.add(given)
         assert seen.all_unique()
         np.testing.assert_array_equal(seen.recorded(), np.sort(ids))
         # one id of an earlier chunk again, among new ones: a repeat in either path
         if len(parts) > 1 and parts[0].size:
             again = np.r_[ids.max() + 1 + np.arange(5) * spread, parts[0][-1]]
-            seen.add(again)
-            assert not seen.all_unique() and seen.flags is None
-
-
-@pytest.mark.parametrize("spread", [1, 3, 9, 50])
-def test_seen_ids_from_chunk_bits_against_a_set(spread):
-    # a check's chunks hand their ids over as _ids_for_flags makes them: flag bits for
-    # ids dense enough (at most a byte per id: spread <= 8), the ids otherwise; mixed
-    # with raw ids, the flags record exactly the set added, and a repeat across chunks
-    # is seen either way
-    rng = np.random.default_rng(100 + spread)
-    for trial in range(30):
-        n = int(rng.integers(1, 3000))
-        ids = rng.choice(n * spread + 5, size=n, replace=False) + int(rng.integers(-99, 99))
-        parts = np.array_split(ids if trial % 3 else np.sort(ids)[::-1],
-                               int(rng.integers(1, 7)))
-        seen = _SeenIds(10**6)
-        for k, part in enumerate(parts):
-            given = tio._ids_for_flags(part, 8 * 10**6) if (k + trial) % 4 else part
-            if part.size and spread <= 4 and given is not part:
-                assert isinstance(given, tio._IdBits)
-                assert given.bits.nbytes <= part.size and given.base % 8 == 0
-            seen.add(given)
-        assert seen.all_unique()
-        np.testing.assert_array_equal(seen.recorded(), np.sort(ids))
-        if len(parts) > 1 and parts[0].size:
-            again = np.r_[ids.max() + 1 + np.arange(40), parts[0][0]]
-            seen.add(tio._ids_for_flags(again, 8 * 10**6))
+            seen.add(again if handover == "ids" else tio._ids_for_flags(again, 8 * 10**6))
             assert not seen.all_unique() and seen.flags is None
 
 
