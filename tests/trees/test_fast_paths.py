@@ -347,14 +347,14 @@ def test_seen_ids_drop_when_the_range_grows_too_far():
     assert not seen.all_unique() and seen.flags is None
 
 
-@pytest.mark.parametrize("spread", [1, 3, 9, 50])        # dense chunks .. scattered ones
+@pytest.mark.parametrize("spread", [1, 3, 9, 50, 100])   # dense chunks .. scattered ones
 @pytest.mark.parametrize("handover", ["ids", "mixed"])
 def test_seen_ids_bits_against_a_set(spread, handover):
     # the flag bits record exactly the set of ids added, whichever way a chunk is
     # flagged (unpacked bytes for dense chunks, bitwise_or.at for scattered ones) and
     # however the flags grow (down by amounts that are not whole bytes, up, both).
     # "mixed": some chunks handed over as a check's workers make them (_ids_for_flags:
-    # flag bits where the ids are dense enough, at most a byte per id, i.e. spread <= 8;
+    # flag bits where they take fewer bytes than the int64 ids, i.e. spread below ~64;
     # the ids otherwise), the others as ids
     rng = np.random.default_rng(spread + (100 if handover == "mixed" else 0))
     for trial in range(20):
@@ -369,10 +369,10 @@ def test_seen_ids_bits_against_a_set(spread, handover):
                 given = tio._ids_for_flags(part, 8 * 10**6)
                 if part.size:
                     lo = int(part.min())
-                    dense = (int(part.max()) - (lo - lo % 8)) // 8 + 1 <= part.size
+                    dense = (int(part.max()) - (lo - lo % 8)) // 8 + 1 < 8 * part.size
                     assert isinstance(given, tio._IdBits) == dense
                     if dense:
-                        assert given.bits.nbytes <= part.size and given.base % 8 == 0
+                        assert given.bits.nbytes < part.nbytes and given.base % 8 == 0
             seen.add(given)
         assert seen.all_unique()
         np.testing.assert_array_equal(seen.recorded(), np.sort(ids))
@@ -385,8 +385,10 @@ def test_seen_ids_bits_against_a_set(spread, handover):
 
 def test_ids_for_flags_forms():
     assert isinstance(tio._ids_for_flags(np.arange(100) * 2, 10**6), tio._IdBits)
-    np.testing.assert_array_equal(tio._ids_for_flags(np.arange(100) * 50, 10**6),
-                                  np.arange(100) * 50)         # too sparse for bits
+    # bits while they take fewer bytes than the ids (8 per id)
+    assert isinstance(tio._ids_for_flags(np.arange(100) * 63, 10**6), tio._IdBits)
+    np.testing.assert_array_equal(tio._ids_for_flags(np.arange(100) * 65, 10**6),
+                                  np.arange(100) * 65)         # too sparse for bits
     assert tio._ids_for_flags(np.array([0, 10**6]), 10**6) is None       # beyond capacity
     assert tio._ids_for_flags(np.array([1.0, 2.0]), 10**6) is None       # not integers
     assert tio._ids_for_flags(np.array([2**64 - 1], dtype=np.uint64), 10**6) is None
@@ -498,6 +500,31 @@ def test_check_of_dense_unique_ids_reads_node_ids_once(tmp_path, monkeypatch):
                         lambda *a, **k: pytest.fail("node_id read a second time"))
     src = open_forests(path, max_nodes=max(1, g.n_nodes // 7))
     assert src.checked
+
+
+@pytest.mark.parametrize("workers", [1, 2])
+def test_check_of_dense_ids_spread_over_every_chunk_reads_node_ids_once(tmp_path,
+                                                                         monkeypatch,
+                                                                         workers):
+    # every chunk's ids span most of the file's (ids numbered across forests, as by
+    # snapshot): beyond 8 ids per byte of budget, within the 64 of the flag bits. The
+    # chunks' handover once took the byte count for the bit count, and a 2.15e7-node
+    # file of unique dense ids was streamed again (3.7 s alone)
+    path, g = _file(tmp_path, "a.h5")
+    n = g.n_nodes
+    with h5py.File(path, "r+") as h5:
+        ids, desc = h5["nodes/node_id"][()], h5["nodes/desc_id"][()]
+        assert np.array_equal(np.sort(ids), np.arange(n))
+        h5["nodes/node_id"][...] = ids * 7919 % n                 # 7919 prime, n = 699
+        h5["nodes/desc_id"][...] = np.where(desc >= 0, desc * 7919 % n, desc)
+    max_nodes = n // 20
+    monkeypatch.setattr(tio, "READ_BLOCK_ROWS", 10)             # budget = max_nodes
+    src = open_forests(path, check=False)
+    spans = [np.ptp(src.read_columns(c)["node_id"]) + 1 for c in src.chunk_ids(max_nodes)]
+    assert 8 * max_nodes < min(spans) and max(spans) <= 64 * max_nodes
+    monkeypatch.setattr(HDF5Forests, "_node_blocks",
+                        lambda *a, **k: pytest.fail("node_id read a second time"))
+    assert src.check(max_nodes, workers).checked
 
 
 def test_check_of_sparse_ids_above_the_budget_streams_them(tmp_path, monkeypatch):
