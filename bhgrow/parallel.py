@@ -399,6 +399,78 @@ def _atomic_write(path: Path, data: bytes) -> None:
     os.replace(tmp, path)
 
 
+class _DiskFlush:
+    """Flushes written files to disk (``fsync``) on a background thread of this process.
+
+    A chunk file is complete and in place (renamed) before its flush is queued, so a killed
+    process or Ctrl-C never leaves a partial file; the flush only matters if the machine
+    itself fails, and then a chunk file that is damaged or missing is run again by a
+    resumed run (:meth:`Checkpoint.load_finished`). Measured 2026-12-03 on a 2.15e7-node
+    file: flushing each ~60 MB chunk file in place took 0.1-0.2 s between chunks, 1.6 s of
+    a 21 s run of 11 chunks. One per process (a forked worker makes its own: threads do not
+    survive a fork); :meth:`wait` flushes what is queued and stops the thread, so no thread
+    of it is alive when the process forks again.
+    """
+
+    def __init__(self):
+        self.pid = os.getpid()
+        self.pending: list = []
+        self.pool = None
+
+    def later(self, fd: int) -> None:
+        """fsync and close ``fd`` (an open descriptor of the file, owned from now on)."""
+        from concurrent.futures import ThreadPoolExecutor
+
+        if self.pool is None:
+            self.pool = ThreadPoolExecutor(1, thread_name_prefix="bhgrow-fsync")
+        self.pending.append(self.pool.submit(_fsync_close, fd))
+
+    def wait(self) -> None:
+        if self.pool is None:
+            return
+        pending, self.pending = self.pending, []
+        try:
+            for f in pending:
+                f.result()
+        finally:
+            self.pool.shutdown(wait=True)
+            self.pool = None
+
+
+def _fsync_close(fd: int) -> None:
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+_FLUSH: list = []
+
+
+def _disk_flush() -> _DiskFlush:
+    """This process's :class:`_DiskFlush`."""
+    if not _FLUSH or _FLUSH[0].pid != os.getpid():
+        _FLUSH[:] = [_DiskFlush()]
+    return _FLUSH[0]
+
+
+def _atomic_pickle(path: Path, obj) -> None:
+    """Pickle ``obj`` into ``path``: written to a hidden file (streamed, no in-memory copy
+    of the pickle), renamed into place, then flushed to disk in the background
+    (:class:`_DiskFlush`)."""
+    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
+    with open(tmp, "wb") as fh:
+        pickle.dump(obj, fh, protocol=5)
+        fh.flush()
+        fd = os.dup(fh.fileno())
+    try:
+        os.replace(tmp, path)
+    except BaseException:
+        os.close(fd)
+        raise
+    _disk_flush().later(fd)
+
+
 class Checkpoint:
     """Finished chunks of a run, kept in ``<run dir>.partial/`` until the run is written.
 
@@ -566,8 +638,7 @@ def save_chunk(directory, index: int, forest_ids, result) -> None:
     """Write chunk ``index``'s result into checkpoint ``directory`` (atomically), with the
     hash of its forest ids (a resumed run reuses it only for the same forests)."""
     blob = {"forest_ids_sha256": _ids_sha256(forest_ids), "result": result}
-    _atomic_write(Path(directory) / "chunks" / f"chunk-{index:05d}.pkl",
-                  pickle.dumps(blob, protocol=5))
+    _atomic_pickle(Path(directory) / "chunks" / f"chunk-{index:05d}.pkl", blob)
 
 
 class _Saved:
@@ -799,6 +870,7 @@ def run_chunks(forest, plan: list, model, run, cosmo, *, workers: int = 1, clien
         interrupted = True
         raise
     finally:
+        _disk_flush().wait()           # this process's chunk files on disk before it goes on
         for bar in bars:
             bar.close()
         if interrupted and checkpoint is not None and progress:

@@ -294,6 +294,40 @@ def test_worker_chunks_saved_by_the_workers_are_complete(sub, reference, tmp_pat
     assert not list((d / "chunks").glob(".*"))                # no temporary files left
 
 
+def test_chunk_file_is_in_place_before_its_flush_and_flushed_by_the_end(tmp_path,
+                                                                       monkeypatch):
+    # a chunk file is complete and renamed before its fsync (queued on a background
+    # thread, so the next chunk need not wait for the disk); every queued file is flushed
+    # and the thread gone once the run's chunks are done (none left alive to a fork)
+    import pickle
+    import threading
+
+    from bhgrow import parallel as par
+
+    flushed = []
+    gate = threading.Event()
+
+    def slow_fsync(fd):
+        gate.wait(10)
+        flushed.append(os.readlink(f"/proc/self/fd/{fd}") if sys.platform == "linux" else fd)
+
+    monkeypatch.setattr(par.os, "fsync", slow_fsync)
+    (tmp_path / "chunks").mkdir()
+    result = {"x": np.arange(10**6)}
+    par.save_chunk(tmp_path, 3, np.array([5, 7]), result)
+    path = tmp_path / "chunks" / "chunk-00003.pkl"
+    assert not flushed                                       # not flushed yet ...
+    with open(path, "rb") as fh:                             # ... but whole and in place
+        np.testing.assert_array_equal(pickle.load(fh)["result"]["x"], result["x"])
+    assert not list((tmp_path / "chunks").glob(".*"))
+    gate.set()
+    par._disk_flush().wait()
+    assert len(flushed) == 1
+    if sys.platform == "linux":
+        assert flushed[0] == str(path)                       # the renamed file's descriptor
+    assert not [t for t in threading.enumerate() if t.name.startswith("bhgrow-fsync")]
+
+
 def test_refined_plan_gives_the_same_results_and_a_matching_checkpoint(sub, reference,
                                                                      tmp_path):
     # with two workers the chunks not yet started are re-planned by measured time per
