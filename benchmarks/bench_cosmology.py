@@ -33,7 +33,7 @@ import numpy as np
 sys.path.insert(0, os.path.join(os.path.dirname(os.path.abspath(__file__)), ".."))
 
 import astropy.units as u  # noqa: E402
-from astropy.cosmology import FlatLambdaCDM, Planck18, z_at_value  # noqa: E402
+from astropy.cosmology import FlatLambdaCDM, z_at_value  # noqa: E402
 
 from bhgrow.cosmology import Cosmology  # noqa: E402
 
