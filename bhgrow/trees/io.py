@@ -951,11 +951,22 @@ def _ids_for_flags(node_id, max_bits: int):
     if hi - lo + 1 > max_bits:
         return None
     base = lo - lo % 8
-    if (hi - base) // 8 + 1 >= ids.nbytes:
+    n_bytes = (hi - base) // 8 + 1
+    if n_bytes >= ids.nbytes:
         return ids
-    flags = np.zeros(hi - base + 1, dtype=bool)
-    flags[ids - np.int64(base)] = True
-    return _IdBits(lo, hi, base, np.packbits(flags, bitorder="little"))
+    k = ids - np.int64(base)
+    if n_bytes <= ids.size:
+        # dense: one byte per id value, at most the ids' own bytes, then packed
+        flags = np.zeros(hi - base + 1, dtype=bool)
+        flags[k] = True
+        return _IdBits(lo, hi, base, np.packbits(flags, bitorder="little"))
+    # sparser (up to 64 values per id): the bits set in place, never a byte per value,
+    # in blocks of ids (small temporaries)
+    bits = np.zeros(n_bytes, dtype=np.uint8)
+    for a in range(0, k.size, 1 << 18):
+        kb = k[a:a + (1 << 18)]
+        np.bitwise_or.at(bits, kb >> 3, np.left_shift(np.uint8(1), (kb & 7).astype(np.uint8)))
+    return _IdBits(lo, hi, base, bits)
 
 
 def open_forests(path, *, check: bool = True, max_nodes: int = 2_000_000,

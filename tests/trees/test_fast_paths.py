@@ -389,6 +389,16 @@ def test_ids_for_flags_forms():
     assert isinstance(tio._ids_for_flags(np.arange(100) * 63, 10**6), tio._IdBits)
     np.testing.assert_array_equal(tio._ids_for_flags(np.arange(100) * 65, 10**6),
                                   np.arange(100) * 65)         # too sparse for bits
+    # the bits of dense ids (a byte per value, packed) and of sparser ones (set in place,
+    # in blocks of ids) against numpy's packbits of the flags
+    rng = np.random.default_rng(5)
+    for spread in (1, 5, 20, 60):
+        ids = rng.choice(600_000 * spread, 600_000, replace=False) - 12345
+        b = tio._ids_for_flags(ids, 10**9)
+        flags = np.zeros(ids.max() - b.base + 1, dtype=bool)
+        flags[ids - b.base] = True
+        np.testing.assert_array_equal(b.bits, np.packbits(flags, bitorder="little"))
+        assert (b.lo, b.hi) == (ids.min(), ids.max()) and b.bits.nbytes < ids.nbytes
     assert tio._ids_for_flags(np.array([0, 10**6]), 10**6) is None       # beyond capacity
     assert tio._ids_for_flags(np.array([1.0, 2.0]), 10**6) is None       # not integers
     assert tio._ids_for_flags(np.array([2**64 - 1], dtype=np.uint64), 10**6) is None
