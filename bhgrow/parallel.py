@@ -402,16 +402,19 @@ def _atomic_write(path: Path, data: bytes) -> None:
 
 
 class _DiskFlush:
-    """Flushes written files to disk (``fsync``) on a background thread of this process.
+    """Flushes written chunk files to disk and renames them into place, on a background
+    thread of this process.
 
-    A chunk file is complete and in place (renamed) before its flush is queued, so a killed
-    process or Ctrl-C never leaves a partial file; the flush only matters if the machine
-    itself fails, and then a chunk file that is damaged or missing is run again by a
-    resumed run (:meth:`Checkpoint.load_finished`). Measured 2026-12-03 on a 2.15e7-node
-    file: flushing each ~60 MB chunk file in place took 0.1-0.2 s between chunks, 1.6 s of
-    a 21 s run of 11 chunks. One per process (a forked worker makes its own: threads do not
-    survive a fork); :meth:`wait` flushes what is queued and stops the thread, so no thread
-    of it is alive when the process forks again.
+    A chunk file is written whole under a hidden name; the thread calls ``fsync`` on it and
+    only then renames it to its chunk name. So a chunk counts as finished (a resumed run
+    reuses it) only once it is on disk: a killed process, Ctrl-C or a machine failure never
+    leaves a partial or unflushed file under a chunk name. A flush that fails leaves the
+    hidden file (not reused; the chunk runs again on resume) and is counted
+    (:meth:`wait`). Measured 2026-12-03 on a 2.15e7-node file: flushing each ~60 MB chunk
+    file before the next chunk took 0.1-0.2 s, 1.6 s of a 21 s run of 11 chunks. One per
+    process (a forked worker makes its own: threads do not survive a fork); :meth:`wait`
+    finishes what is queued and stops the thread, and :func:`_run_pool` calls it before it
+    forks, so no thread of it is alive in a process that forks.
     """
 
     def __init__(self):
@@ -419,31 +422,37 @@ class _DiskFlush:
         self.pending: list = []
         self.pool = None
 
-    def later(self, fd: int) -> None:
-        """fsync and close ``fd`` (an open descriptor of the file, owned from now on)."""
+    def later(self, fd: int, tmp: Path, path: Path) -> None:
+        """fsync and close ``fd`` (an open descriptor of ``tmp``, owned from now on), then
+        rename ``tmp`` to ``path``."""
         from concurrent.futures import ThreadPoolExecutor
 
         if self.pool is None:
             self.pool = ThreadPoolExecutor(1, thread_name_prefix="bhgrow-fsync")
-        self.pending.append(self.pool.submit(_fsync_close, fd))
+        self.pending.append(self.pool.submit(_flush_and_rename, fd, tmp, path))
 
-    def wait(self) -> None:
+    def wait(self) -> int:
+        """Finish the queued flushes and stop the thread; the number that failed."""
         if self.pool is None:
-            return
+            return 0
         pending, self.pending = self.pending, []
         try:
-            for f in pending:
-                f.result()
+            return sum(not f.result() for f in pending)
         finally:
             self.pool.shutdown(wait=True)
             self.pool = None
 
 
-def _fsync_close(fd: int) -> None:
+def _flush_and_rename(fd: int, tmp: Path, path: Path) -> bool:
     try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
+        try:
+            os.fsync(fd)
+        finally:
+            os.close(fd)
+        os.replace(tmp, path)
+    except OSError:
+        return False
+    return True
 
 
 _FLUSH: list = []
@@ -456,21 +465,29 @@ def _disk_flush() -> _DiskFlush:
     return _FLUSH[0]
 
 
+def _hidden_name(path: Path, pid: int) -> Path:
+    """Where process ``pid`` writes ``path`` before it is flushed and renamed."""
+    return path.with_name(f".{path.name}.tmp-{pid}")
+
+
 def _atomic_pickle(path: Path, obj) -> None:
     """Pickle ``obj`` into ``path``: written to a hidden file (streamed, no in-memory copy
-    of the pickle), renamed into place, then flushed to disk in the background
-    (:class:`_DiskFlush`)."""
-    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
-    with open(tmp, "wb") as fh:
-        pickle.dump(obj, fh, protocol=5)
-        fh.flush()
-        fd = os.dup(fh.fileno())
+    of the pickle), then flushed to disk and renamed into place in the background
+    (:class:`_DiskFlush`). A failed write removes the hidden file and raises
+    :class:`~bhgrow.errors.BhgrowInputError` (a full disk is the user's to fix)."""
+    tmp = _hidden_name(path, os.getpid())
     try:
-        os.replace(tmp, path)
-    except BaseException:
-        os.close(fd)
-        raise
-    _disk_flush().later(fd)
+        with open(tmp, "wb") as fh:
+            pickle.dump(obj, fh, protocol=5)
+            fh.flush()
+            fd = os.dup(fh.fileno())
+    except OSError as exc:
+        tmp.unlink(missing_ok=True)
+        raise BhgrowInputError(
+            f"{path.parent.parent}: could not write a finished chunk ({exc.strerror or exc}); "
+            f"the chunks written so far are kept: free space and rerun with --resume",
+            source=str(path), rule="write_failed") from None
+    _disk_flush().later(fd, tmp, path)
 
 
 class Checkpoint:
@@ -556,6 +573,8 @@ class Checkpoint:
                 f"cannot be resumed — pass --overwrite (without --resume) to discard it",
                 source=str(directory), rule="checkpoint_mismatch")
         ck = cls(directory, old_plan, digests)
+        for p in (directory / "chunks").glob(".*"):
+            p.unlink(missing_ok=True)    # never flushed and renamed: not finished chunks
         finished = ck._read_finished()
         if replan is not None:
             keep = sorted(finished)
@@ -604,10 +623,21 @@ class Checkpoint:
         """Write the result of chunk ``index`` (atomically)."""
         save_chunk(self.directory, index, self.plan[index], result)
 
-    def load(self, index: int):
-        """The result of chunk ``index`` as saved (by this process or a worker)."""
-        with open(self.chunk_path(index), "rb") as fh:
-            return pickle.load(fh)["result"]
+    def load(self, index: int, pid: int | None = None):
+        """The result of chunk ``index`` as saved (by this process or worker ``pid``: from
+        its hidden file while that is being flushed, whichever name it has when opened; the
+        rename is atomic, so one of the two exists)."""
+        names = [self.chunk_path(index)]
+        if pid is not None:
+            names.insert(0, _hidden_name(names[0], pid))
+        for _ in range(3):
+            for name in names:
+                try:
+                    with open(name, "rb") as fh:
+                        return pickle.load(fh)["result"]
+                except FileNotFoundError:
+                    continue
+        raise FileNotFoundError(f"{names[-1]}: chunk file missing")
 
     def _read_finished(self) -> dict:
         out = {}
@@ -645,7 +675,11 @@ def save_chunk(directory, index: int, forest_ids, result) -> None:
 
 class _Saved:
     """What a pool worker returns for a chunk it saved in the checkpoint itself: the result
-    is read back from the file instead of being pickled through a pipe as well."""
+    is read back from the file instead of being pickled through a pipe as well (``pid``:
+    the worker's, whose hidden file holds the chunk until its flush renames it)."""
+
+    def __init__(self, pid: int | None = None):
+        self.pid = os.getpid() if pid is None else pid
 
 
 # ------------------------------------------------------------------------------------------
@@ -833,7 +867,7 @@ def run_chunks(forest, plan: list, model, run, cosmo, *, workers: int = 1, clien
 
     def done(i, r, saved=False):
         if isinstance(r, _Saved):
-            r = checkpoint.load(i)
+            r = checkpoint.load(i, r.pid)
         elif checkpoint is not None and not saved:
             checkpoint.save(i, r)
         results[i] = r if on_result is None else on_result(i, r)
@@ -872,13 +906,19 @@ def run_chunks(forest, plan: list, model, run, cosmo, *, workers: int = 1, clien
         interrupted = True
         raise
     finally:
-        _disk_flush().wait()           # this process's chunk files on disk before it goes on
         for bar in bars:
             bar.close()
+        # this process's chunk files on disk and in place before it goes on (a failed
+        # flush only leaves its chunk to be run again by a resumed run)
+        failed = _disk_flush().wait()
         if interrupted and checkpoint is not None and progress:
-            n = sum(r is not None for r in results)
+            n = sum(r is not None for r in results) - failed
             print(f"bhgrow: {n} of {len(plan)} chunks kept in {checkpoint.directory}; "
                   f"continue with --resume", file=sys.stderr)
+    if failed:
+        print(f"bhgrow: warning: {failed} finished chunk file(s) could not be flushed to "
+              f"disk in {checkpoint.directory}; a resumed run would run them again",
+              file=sys.stderr)
     return results
 
 
@@ -960,6 +1000,7 @@ def _run_pool(n_proc, task, todo, done, started, start_method, what, *,
     from concurrent.futures.process import BrokenProcessPool
 
     n_pool = n_proc - 1
+    _disk_flush().wait()       # no flush thread of this process alive across the fork
     pool = ProcessPoolExecutor(max_workers=n_pool, mp_context=mp.get_context(start_method),
                                initializer=_init_worker, initargs=(task, saved))
     queue = list(reversed(todo))              # pop() gives the largest chunk left

@@ -294,12 +294,11 @@ def test_worker_chunks_saved_by_the_workers_are_complete(sub, reference, tmp_pat
     assert not list((d / "chunks").glob(".*"))                # no temporary files left
 
 
-def test_chunk_file_is_in_place_before_its_flush_and_flushed_by_the_end(tmp_path,
-                                                                       monkeypatch):
-    # a chunk file is complete and renamed before its fsync (queued on a background
-    # thread, so the next chunk need not wait for the disk); every queued file is flushed
-    # and the thread gone once the run's chunks are done (none left alive to a fork)
-    import pickle
+def test_chunk_file_takes_its_name_only_once_flushed(tmp_path, monkeypatch):
+    # a chunk file is written whole under a hidden name and renamed to its chunk name only
+    # after its fsync (on a background thread, so the next chunk need not wait for the
+    # disk); meanwhile it can be read back by its writer's pid; once the flushes are
+    # waited for, it is in place and the thread is gone (none alive to a fork)
     import threading
 
     from bhgrow import parallel as par
@@ -312,19 +311,64 @@ def test_chunk_file_is_in_place_before_its_flush_and_flushed_by_the_end(tmp_path
         flushed.append(os.readlink(f"/proc/self/fd/{fd}") if sys.platform == "linux" else fd)
 
     monkeypatch.setattr(par.os, "fsync", slow_fsync)
+    ck = Checkpoint(tmp_path, [np.array([5, 7])] * 4, {})
     (tmp_path / "chunks").mkdir()
     result = {"x": np.arange(10**6)}
-    par.save_chunk(tmp_path, 3, np.array([5, 7]), result)
-    path = tmp_path / "chunks" / "chunk-00003.pkl"
-    assert not flushed                                       # not flushed yet ...
-    with open(path, "rb") as fh:                             # ... but whole and in place
-        np.testing.assert_array_equal(pickle.load(fh)["result"]["x"], result["x"])
-    assert not list((tmp_path / "chunks").glob(".*"))
+    ck.save(3, result)
+    path = ck.chunk_path(3)
+    assert not flushed and not path.exists()                 # not flushed, not in place
+    got = ck.load(3, os.getpid())                            # ... but whole
+    np.testing.assert_array_equal(got["x"], result["x"])
     gate.set()
-    par._disk_flush().wait()
-    assert len(flushed) == 1
+    assert par._disk_flush().wait() == 0
+    assert len(flushed) == 1 and path.exists()
+    assert not list((tmp_path / "chunks").glob(".*"))        # the hidden file renamed
     if sys.platform == "linux":
-        assert flushed[0] == str(path)                       # the renamed file's descriptor
+        assert flushed[0].endswith(f".chunk-00003.pkl.tmp-{os.getpid()}")
+    np.testing.assert_array_equal(ck.load(3, os.getpid())["x"], result["x"])
+    assert not [t for t in threading.enumerate() if t.name.startswith("bhgrow-fsync")]
+
+
+def test_failed_flush_leaves_the_chunk_to_run_again(tmp_path, monkeypatch, capsys):
+    # a chunk file whose fsync fails never takes its chunk name (a resumed run runs the
+    # chunk again); the run itself goes on, with a warning
+    from bhgrow import parallel as par
+
+    def bad_fsync(fd):
+        raise OSError(5, "Input/output error")
+
+    monkeypatch.setattr(par.os, "fsync", bad_fsync)
+    ck = Checkpoint(tmp_path, [np.array([1])], {})
+    (tmp_path / "chunks").mkdir()
+    ck.save(0, {"x": 1})
+    assert par._disk_flush().wait() == 1
+    assert not ck.chunk_path(0).exists()
+    assert ck.load(0, os.getpid()) == {"x": 1}               # this run can still read it
+
+
+def test_full_disk_is_a_clear_error_and_leaves_no_hidden_file(tmp_path, monkeypatch):
+    import pickle as pk
+
+    from bhgrow import parallel as par
+
+    def full(*a, **k):
+        raise OSError(28, "No space left on device")
+
+    monkeypatch.setattr(par.pickle, "dump", full)
+    ck = Checkpoint(tmp_path, [np.array([1])], {})
+    (tmp_path / "chunks").mkdir()
+    with pytest.raises(BhgrowInputError, match="No space left on device.*--resume") as err:
+        ck.save(0, {"x": 1})
+    assert err.value.rule == "write_failed"
+    assert not list((tmp_path / "chunks").iterdir())
+    assert pk.loads(pk.dumps(err.value)).rule == "write_failed"    # travels from a worker
+
+
+def test_no_flush_thread_outlives_a_run_with_a_checkpoint(sub, reference, tmp_path):
+    import threading
+
+    cfg = from_table({"run": {**FAST, "chunk_nodes": 6000}})
+    run_model(sub, cfg, workers=2, checkpoint_dir=tmp_path / "run.partial")
     assert not [t for t in threading.enumerate() if t.name.startswith("bhgrow-fsync")]
 
 
