@@ -51,6 +51,7 @@ in gravitational waves at its coalescences. Per forest, to round-off:
 
 from __future__ import annotations
 
+import math
 import time
 from dataclasses import dataclass, field
 
@@ -218,7 +219,8 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
               z_snap=np.asarray(forest.snapshots.z, dtype=float), t_by_num=t_by_num,
               state=_NodeState.for_forest(forest), bh=BlackHoles(), hist=History(),
               n_seeds={name: 0 for name in sd.CHANNEL_CODES},
-              channels=[c for _, c in model.seeding])
+              channels=[c for _, c in model.seeding],
+              stripped=np.zeros(forest.n_forests), outflow=np.zeros(forest.n_forests))
     for k in range(len(forest.snapshots)):
         _snapshot(w, k)
     bh, events = w.bh, w.events
@@ -227,8 +229,13 @@ def run_forest(forest: Forest, model: Model, run: RunSettings,
     ledger = _ledger(bh, forest)
     excess = w.max_excess if np.isfinite(w.max_excess) else 0.0      # 0: no roots
     baryon = {"max_relative_excess": excess, "ok": bool(excess <= 1e-6)}
-    baryon["stripped_msun"] = float(w.stripped[0])
-    baryon["outflow_msun"] = float(w.outflow[0])
+    # per forest, each summed in the same order whatever the chunk (np.add.at adds row by
+    # row); the totals are exactly rounded sums of those, so a run of several chunks gets
+    # the same totals, bit for bit, from all its chunks' forests (pipeline.run_model)
+    baryon["stripped_msun"] = math.fsum(w.stripped)
+    baryon["outflow_msun"] = math.fsum(w.outflow)
+    baryon["stripped_per_forest"] = w.stripped
+    baryon["outflow_per_forest"] = w.outflow
     mergers = {key: np.concatenate([e[key] for e in events]) for key in events[0]} \
         if events else {}
     return EngineResult(black_holes=bh, history=w.hist, forest=forest, ledger=ledger,
@@ -310,10 +317,10 @@ class _Walk:
     n_seeds: dict
     channels: list
     events: list = field(default_factory=list)
-    # totals of gas removed by the baryon cap at halo mergers and by SN + AGN outflows
-    # (one-element arrays, so _grow can add to them in place)
-    stripped: np.ndarray = field(default_factory=lambda: np.zeros(1))
-    outflow: np.ndarray = field(default_factory=lambda: np.zeros(1))
+    # gas removed by the baryon cap at halo mergers and by SN + AGN outflows, per forest
+    # (aligned with forest.forest_ids)
+    stripped: np.ndarray | None = None
+    outflow: np.ndarray | None = None
     #: largest relative excess of gas + stars + black holes over f_b M at the roots so far
     max_excess: float = -np.inf
 
@@ -326,7 +333,6 @@ def _snapshot(w: _Walk, k: int) -> None:
     desc, mass_h = forest.desc_index, forest.mass_msun
     prog_offsets, prog_index = forest.prog_offsets, forest.prog_index
     offsets, main_prog = forest.snap_offsets, forest.main_prog
-    outflow, stripped = w.outflow, w.stripped          # added to in place
     sl = forest.snapshot_slice(k)
     if sl.stop == sl.start:
         return
@@ -404,16 +410,18 @@ def _snapshot(w: _Walk, k: int) -> None:
     inflow = fb_eff * smooth / np.where(dts > 0, dts, 1.0)
     step_rows = dts > 0
     quiet = step_rows & ~has_central
+    blown = np.zeros(rows.size)           # gas blown out of each halo over its interval
     if quiet.any():
-        outflow += _reservoir_step(model, quiet, gas_sl, stars_sl, metals_sl, inflow, t_dyn,
-                                   v_c, dts)
+        _reservoir_step(model, quiet, gas_sl, stars_sl, metals_sl, inflow, t_dyn, v_c, dts,
+                        blown)
     cbh = np.flatnonzero(central)
     cbh = cbh[step_rows[bh.host[cbh] - sl.start]] if cbh.size else cbh
     # in near-equal blocks of at most _SOLVER_BLOCK holes: the solver's ~60 temporaries
     # then stay in the CPU's last-level cache; each hole's result depends on its own halo
     for blk in _blocks(cbh.size, _SOLVER_BLOCK):
-        _grow(model, run, bh, cbh[blk], sl, gas_sl, stars_sl, metals_sl, outflow, inflow,
+        _grow(model, run, bh, cbh[blk], sl, gas_sl, stars_sl, metals_sl, blown, inflow,
               t_dyn, v_c, v_esc, r_vir, t_vir, dts, k)
+    np.add.at(w.outflow, forest.forest_index[sl], blown)
 
     # --- pass state down the trees ----------------------------------------------------------
     hosted = np.zeros(rows.size, dtype=bool)
@@ -450,7 +458,7 @@ def _snapshot(w: _Walk, k: int) -> None:
             metals[us] *= np.divide(gs - cut, gs, out=np.zeros(sel.size),
                                     where=gs > 0)    # stripped gas takes its metals
             gas[us] = gs - cut
-            stripped += cut.sum()
+            np.add.at(w.stripped, forest.forest_index[lo + sel], cut)
 
 
 def _halo_properties(model, cosmo, m, z: float):
@@ -468,17 +476,18 @@ def _halo_properties(model, cosmo, m, z: float):
     return out
 
 
-def _reservoir_step(model, quiet, gas, stars, metals, inflow, t_dyn, v_c, dts) -> float:
+def _reservoir_step(model, quiet, gas, stars, metals, inflow, t_dyn, v_c, dts,
+                    blown) -> None:
     """Step 3 for the halos without a central black hole (mask ``quiet`` of the slice): the
     closed-form step of :meth:`StarFormation.step`, without its argument checks (all made
     by the engine) and the metal-flow integrals (not used). Updates the slice's ``gas``,
-    ``stars`` and ``metals`` in place; returns the gas blown out (Msun).
+    ``stars`` and ``metals`` in place, and ``blown`` (the gas blown out, Msun) at the quiet
+    rows.
 
     Most halos of a slice are quiet, so the step runs on the whole slice (no gathers) and
     only the quiet rows are kept; in blocks of :data:`_BLOCK` rows, whose ~20 temporaries
     stay in the CPU cache (measured: half the time of whole-slice arrays of 5e5 rows).
     """
-    out = 0.0
     for b in _blocks(quiet.size, _BLOCK):
         res = model.star_formation._evolve(gas[b], stars[b], metals[b], inflow[b], t_dyn[b],
                                            v_c[b], dts[b], metal_flows=False)
@@ -486,8 +495,7 @@ def _reservoir_step(model, quiet, gas, stars, metals, inflow, t_dyn, v_c, dts) -
         np.copyto(gas[b], res.gas, where=q)
         np.copyto(stars[b], res.stars, where=q)
         np.copyto(metals[b], res.metals, where=q)
-        out += float(res.outflow_msun.sum(where=q))
-    return out
+        np.copyto(blown[b], res.outflow_msun, where=q)
 
 def _seed(w: _Walk, sl: slice, z: float, m, t_vir, r_vir, gas_sl, metals_sl, polluted_sl,
           has_central) -> np.ndarray:
@@ -545,7 +553,7 @@ def _escape_speeds(model, m, v_c, z, cosmo, v_esc, loc) -> None:
         v_esc[at] = model.halo.escape_speed_kms(m[at], z, cosmo, v_c[at])
 
 
-def _grow(model, run, bh, cbh, sl, gas, stars, metals, outflow, inflow, t_dyn,
+def _grow(model, run, bh, cbh, sl, gas, stars, metals, blown, inflow, t_dyn,
           v_c, v_esc, r_vir, t_vir, dts, k):
     """Reservoir, accretion and feedback over the interval for halos with a central hole.
 
@@ -625,7 +633,7 @@ def _grow(model, run, bh, cbh, sl, gas, stars, metals, outflow, inflow, t_dyn,
     bh.last_mdot[cbh] = np.divide(taken, h_total, out=np.zeros(cbh.size), where=h_total > 0)
     gas[hl], metals[hl] = g, z
     stars[hl] += formed
-    outflow += out.sum()
+    blown[hl] = out                 # one central per halo
 
 
 def _nonlinear_step(model, c, g, z, m, h, rho_1, cs, shift):

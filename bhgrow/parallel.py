@@ -73,8 +73,9 @@ from .trees.forest import Forest
 # backend)
 EXECUTION_KEYS = ("workers", "dask_scheduler", "chunk_nodes")
 CHECKPOINT_FORMAT = "bhgrow-checkpoint"
-#: layout of the pickled chunk results (2: black-hole tables carry their stream keys)
-CHECKPOINT_SCHEMA = 2
+#: layout of the pickled chunk results (2: black-hole tables carry their stream keys; 3:
+#: baryon totals per forest)
+CHECKPOINT_SCHEMA = 3
 DASK_HINT = "pip install -e '.[dask]'"
 
 

@@ -299,10 +299,12 @@ def run_model(forest: "Forest | HDF5Forests", config: Config | None = None, *,
     order = _black_hole_catalogue(cat, weights_of, table)
     wall = time.perf_counter() - t0
     ledger = _combine_ledger([r.ledger for r in results], plan, cat)
-    # chunk sums: identical for any plan up to round-off in the last digit
+    # exactly rounded sums of every forest's total (each summed in an order that does not
+    # depend on the chunk): the same, bit for bit, for any plan
     baryons = {"max_relative_excess": max(r.baryons["max_relative_excess"] for r in results),
-               "stripped_msun": math.fsum(r.baryons["stripped_msun"] for r in results),
-               "outflow_msun": math.fsum(r.baryons["outflow_msun"] for r in results)}
+               **{f"{k}_msun": math.fsum(np.concatenate(
+                   [r.baryons[f"{k}_per_forest"] for r in results])) for k in
+                  ("stripped", "outflow")}}
     baryons["tolerance"] = 1e-6
     baryons["ok"] = bool(baryons["max_relative_excess"] <= baryons["tolerance"])
     n_seeds = {k: sum(r.n_seeds[k] for r in results) for k in results[0].n_seeds}
