@@ -25,9 +25,9 @@ independent chunks:
 3. :class:`Checkpoint` writes every finished chunk at once and atomically into
    ``<run dir>.partial/`` (a local worker process writes the chunks it ran itself); a
    resumed run reuses the finished chunks and runs the rest, so an interrupted run loses
-   at most the chunks in flight. A chunk file is renamed into place once complete and
-   flushed to disk on a background thread (:class:`_DiskFlush`), so the next chunk does
-   not wait for the disk.
+   at most the chunks in flight. A chunk file is written under a hidden name, flushed to
+   disk on a background thread and only then renamed into place (:class:`_DiskFlush`), so
+   the next chunk does not wait for the disk.
 
 The caller (:func:`bhgrow.pipeline.run_model`) merges the chunk results and sorts every
 table by id / time, so the products are the same, bit for bit, for any plan and any number
