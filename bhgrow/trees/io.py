@@ -853,7 +853,7 @@ class _SeenIds:
             bits[k] = True
             self.flags[first:last] = np.packbits(bits, bitorder="little")
         else:
-            byte, bit = k >> 3, np.left_shift(np.uint8(1), (k & 7).astype(np.uint8))
+            byte, bit = _byte_and_bit(k)
             if (self.flags[first + byte] & bit).any():
                 self._repeat()
                 return
@@ -937,8 +937,8 @@ class _IdBits(NamedTuple):
 def _ids_for_flags(node_id, max_bits: int):
     """What :meth:`_SeenIds.add` needs of a chunk's ids (as stored in the file): the ids
     as :class:`_IdBits` where those take fewer bytes than the ids (8 per id: a range of
-    up to 64 values per id); None where the flags could not hold them anyway (not integers, or a range
-    above ``max_bits`` values); else the ids as int64. Repeats within the chunk are not
+    up to 64 values per id); None where the flags could not hold them anyway (not
+    integers, or a range above ``max_bits`` values); else the ids as int64. Repeats within the chunk are not
     kept (:class:`~bhgrow.trees.validate.ChunkedCheck` finds those)."""
     arr = np.asarray(node_id)
     if arr.size == 0:
@@ -964,9 +964,13 @@ def _ids_for_flags(node_id, max_bits: int):
     # in blocks of ids (small temporaries)
     bits = np.zeros(n_bytes, dtype=np.uint8)
     for a in range(0, k.size, 1 << 18):
-        kb = k[a:a + (1 << 18)]
-        np.bitwise_or.at(bits, kb >> 3, np.left_shift(np.uint8(1), (kb & 7).astype(np.uint8)))
+        np.bitwise_or.at(bits, *_byte_and_bit(k[a:a + (1 << 18)]))
     return _IdBits(lo, hi, base, bits)
+
+
+def _byte_and_bit(k):
+    """Byte index and bit mask of flag offsets ``k`` (numpy's "little" bit order)."""
+    return k >> 3, np.left_shift(np.uint8(1), (k & 7).astype(np.uint8))
 
 
 def open_forests(path, *, check: bool = True, max_nodes: int = 2_000_000,
