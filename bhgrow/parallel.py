@@ -980,6 +980,46 @@ def run_tasks(tasks: list, workers: int, *, what: str) -> list:
     return [t() for t in tasks]
 
 
+class ForkedJob:
+    """``fn()`` in a forked process (Linux), started at once: work this process need not
+    wait for, such as the pipeline's histories file, written while the catalogues are
+    merged (:func:`bhgrow.pipeline.run_model`).
+
+    The process ignores Ctrl-C (this one stops it, :meth:`cancel`), prints nothing if
+    ``fn`` fails (this one redoes the work: :meth:`wait` is then False) and is stopped if
+    this process exits first (a daemon process).
+    """
+
+    def __init__(self, fn):
+        import multiprocessing as mp
+
+        _disk_flush().wait()       # no flush thread of this process alive across the fork
+        self._proc = mp.get_context("fork").Process(target=_forked_call, args=(fn,),
+                                                     daemon=True)
+        self._proc.start()
+
+    def wait(self) -> bool:
+        """Wait for the process; True if ``fn`` returned normally."""
+        self._proc.join()
+        return self._proc.exitcode == 0
+
+    def cancel(self) -> None:
+        """Stop the process (if still running) and wait for it."""
+        if self._proc.is_alive():
+            self._proc.terminate()
+        self._proc.join()
+
+
+def _forked_call(fn) -> None:
+    import signal
+
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    try:
+        fn()
+    except BaseException:  # noqa: BLE001 - the parent redoes the work and reports
+        os._exit(1)
+
+
 def _run_pool(n_proc, task, todo, done, started, start_method, what, *,
               saved: bool = False, refresh=None, payload=None) -> None:
     """Run ``task(i)`` for ``i`` in ``todo`` on ``n_proc`` workers: ``n_proc - 1`` forked

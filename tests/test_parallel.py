@@ -260,6 +260,10 @@ def test_histories_of_several_chunks_are_kept_on_disk(sub, reference, tmp_path):
     assert store.directory.parent == tmp_path
     assert store.directory.name.startswith(".many.partial-histories-")
     assert not (tmp_path / "many.partial").exists()
+    # the histories file was written by a forked process while the catalogues were merged
+    # (histories_early) and moved into place: its scratch directory is gone
+    assert not list(tmp_path.glob(".many.partial-histories-file-*"))
+    assert many.histories_early is None
     assert_same(reference, many)
     one = run(from_table({"run": {**FAST, "chunk_nodes": 10**9}}), trees=sub,
               out=tmp_path / "one", workers=1)
@@ -280,6 +284,94 @@ def test_histories_of_several_chunks_are_kept_on_disk(sub, reference, tmp_path):
     del many, store
     gc.collect()
     assert not directory.exists()
+
+
+def _histories_bytes(path):
+    import h5py
+
+    with h5py.File(path) as h5:
+        out = {}
+        h5.visititems(lambda name, obj: out.__setitem__(name, obj[()].tobytes())
+                      if hasattr(obj, "dtype") else None)
+    return out
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="fork start method")
+def test_histories_file_from_a_failed_forked_writer_is_written_here(sub, tmp_path,
+                                                                    monkeypatch, capfd):
+    # the forked process writing the histories early fails (as on a full disk): this
+    # process writes the file itself, the same file, with nothing printed and nothing left
+    from bhgrow import pipeline
+    from bhgrow.pipeline import run
+
+    cfg = from_table({"run": {**FAST, "chunk_nodes": 6000}})
+    run(cfg, trees=sub, out=tmp_path / "good", workers=2)
+    real, parent = pipeline.write_histories, os.getpid()
+    writers = []
+
+    def fails_in_a_child(cols, path, **kw):
+        if os.getpid() != parent:
+            raise OSError(28, "No space left on device")
+        writers.append(path)
+        return real(cols, path, **kw)
+
+    monkeypatch.setattr(pipeline, "write_histories", fails_in_a_child)
+    capfd.readouterr()
+    res = run(cfg, trees=sub, out=tmp_path / "bad", workers=2)
+    assert res.provenance["n_chunks"] > 2 and len(writers) == 1    # written here, once
+    assert capfd.readouterr().err == ""
+    assert _histories_bytes(tmp_path / "bad" / "histories.h5") == \
+        _histories_bytes(tmp_path / "good" / "histories.h5")
+    assert not list(tmp_path.glob(".bad.partial-histories-file-*"))
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="fork start method")
+def test_early_histories_writer_stopped_when_the_run_fails(sub, tmp_path, monkeypatch):
+    # the merge after the chunks fails: the forked writer is stopped and its scratch
+    # directory removed; a result never written leaves nothing behind either
+    import gc
+    import multiprocessing as mp
+
+    from bhgrow import pipeline
+
+    cfg = from_table({"run": {**FAST, "chunk_nodes": 6000}})
+    d = tmp_path / "run.partial"
+
+    def broken(*a, **k):
+        raise RuntimeError("merge failed")
+
+    monkeypatch.setattr(pipeline, "_merger_table", broken)
+    with pytest.raises(RuntimeError, match="merge failed"):
+        run_model(sub, cfg, workers=2, checkpoint_dir=d, histories_early=True)
+    assert not list(tmp_path.glob(".run.partial-histories-file-*"))
+    assert not mp.active_children()
+    monkeypatch.undo()
+    res = run_model(sub, cfg, workers=2, checkpoint_dir=tmp_path / "again.partial",
+                    histories_early=True)
+    assert res.histories_early is not None
+    assert len(list(tmp_path.glob(".again.partial-histories-file-*"))) == 1
+    del res
+    gc.collect()
+    assert not list(tmp_path.glob(".again.partial-histories-file-*"))
+    assert not mp.active_children()
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="fork start method")
+def test_forked_job_reports_success_failure_and_stops(tmp_path, capfd):
+    from bhgrow.parallel import ForkedJob
+
+    mark = tmp_path / "done"
+    assert ForkedJob(mark.touch).wait() and mark.exists()
+
+    def fail():
+        raise ValueError("no")
+
+    assert not ForkedJob(fail).wait()
+    assert capfd.readouterr().err == ""         # no traceback from the forked process
+    slow = ForkedJob(lambda: time.sleep(60))
+    t0 = time.perf_counter()
+    slow.cancel()
+    assert time.perf_counter() - t0 < 10 and not slow.wait()
 
 
 def test_worker_chunks_saved_by_the_workers_are_complete(sub, reference, tmp_path):
