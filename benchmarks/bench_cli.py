@@ -22,11 +22,13 @@ commands):
    accounting of the finished child);
 2. **stages** -- the same steps through the Python API in a new process, each timed:
    imports, ``open_forests`` (reads the index and checks the whole file, while this
-   process sets up the cosmology), ``run_model``
-   split into the chunk runs (with the LISA SNRs) and the rest (merging, catalogues), and
-   ``write_run`` (catalogues, histories, tables, summary and figures: with several workers
-   one task list shared by them, the catalogues in parts of rows). The file check and the
-   writing also use the workers.
+   process sets up the cosmology and hashes the file), ``run_model`` (chunks kept in
+   ``DIR.partial`` as by the command) split into the chunk runs (with the LISA SNRs) and
+   the rest (merging, catalogues; with several workers a forked process starts the
+   histories file meanwhile), and ``write_run`` (catalogues, histories, tables, summary
+   and figures: with several workers one task list shared by them, the catalogues in parts
+   of rows) with the removal of ``DIR.partial``. The file check and the writing also use
+   the workers.
 
 The forest file: ``--trees FILE`` (a bhgrow HDF5 file), or by default the forest set of
 ``bench_balance.py`` built with ``--seed 11`` (17,000 toy forests + one 1e15 Msun cluster
@@ -62,10 +64,12 @@ t = {"imports": time.perf_counter() - t0}
 trees, out, workers = sys.argv[1], sys.argv[2], int(sys.argv[3])
 cfg = load_config(None)
 s = time.perf_counter()
-# as bhgrow.pipeline.run: the cosmology is set up while the other workers check
+# as bhgrow.pipeline.run: the cosmology is set up and the file hashed while the other
+# workers check
 from bhgrow.cosmology import Cosmology
-forest = open_forests(trees, check=False).check(
-    cfg.run.chunk_nodes, workers, meanwhile=lambda: Cosmology.from_name(cfg.run.cosmology))
+lazy = open_forests(trees, check=False)
+forest = lazy.check(cfg.run.chunk_nodes, workers,
+                    meanwhile=lambda: (Cosmology.from_name(cfg.run.cosmology), lazy.sha256()))
 t["open_and_check"] = time.perf_counter() - s
 inner = {}
 def timed(name, fn):
@@ -78,12 +82,19 @@ def timed(name, fn):
     return wrapper
 parallel.run_chunks = timed("chunks", parallel.run_chunks)
 s = time.perf_counter()
-res = pipeline.run_model(forest, cfg, workers=workers, trees_path=trees)
+# as bhgrow.pipeline.run: chunks kept in <out>.partial, the histories file started by a
+# forked process while the catalogues are merged
+import shutil
+from bhgrow.parallel import Checkpoint
+partial = Checkpoint.directory_for(out)
+res = pipeline.run_model(forest, cfg, workers=workers, trees_path=trees,
+                         checkpoint_dir=partial, histories_early=True)
 t["run_model"] = time.perf_counter() - s
 t["chunks"] = inner["chunks"]
 t["merge_and_catalogues"] = t["run_model"] - t["chunks"]
 s = time.perf_counter()
 pipeline.write_run(res, cfg, out, workers=workers)
+shutil.rmtree(partial, ignore_errors=True)
 t["write_run"] = time.perf_counter() - s
 t["total"] = time.perf_counter() - t0
 print(json.dumps(t))
