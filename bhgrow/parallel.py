@@ -986,8 +986,10 @@ class ForkedJob:
     merged (:func:`bhgrow.pipeline.run_model`).
 
     The process ignores Ctrl-C (this one stops it, :meth:`cancel`), prints nothing if
-    ``fn`` fails (this one redoes the work: :meth:`wait` is then False) and is stopped if
-    this process exits first (a daemon process).
+    ``fn`` fails (this one redoes the work: :meth:`wait` is then False), is stopped when
+    this process exits (a daemon process) and exits by itself within a second if this
+    process is killed (as a pool worker does). Raises OSError if the process cannot be
+    forked.
     """
 
     def __init__(self, fn):
@@ -1014,6 +1016,10 @@ def _forked_call(fn) -> None:
     import signal
 
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+    # as a pool worker: the parent's free heap dropped (its writes are then no copy-on-write
+    # faults here), and no lingering once the parent is gone
+    release_free_memory()
+    threading.Thread(target=_exit_with_parent, args=(os.getppid(),), daemon=True).start()
     try:
         fn()
     except BaseException:  # noqa: BLE001 - the parent redoes the work and reports

@@ -63,7 +63,9 @@ class RunResult:
 class _EarlyHistories:
     """The histories file, written by a forked process (:class:`bhgrow.parallel.ForkedJob`)
     into the scratch directory ``directory`` until :meth:`collect` moves it into place;
-    stopped and removed if never collected."""
+    stopped and removed if never collected. :meth:`start` returns None (and removes the
+    directory) where the process cannot be forked: the file is then written by
+    :func:`write_run` as usual."""
 
     def __init__(self, histories, directory):
         from .parallel import ForkedJob
@@ -71,20 +73,33 @@ class _EarlyHistories:
         self.directory = Path(directory)
         self.path = self.directory / "histories.h5"
         self.job = ForkedJob(partial(write_histories, histories, self.path))
-        weakref.finalize(self, _drop_job, self.job, str(self.directory), os.getpid())
+        self._pid = os.getpid()
+        weakref.finalize(self, _drop_job, self.job, str(self.directory), self._pid)
+
+    @classmethod
+    def start(cls, histories, directory) -> "_EarlyHistories | None":
+        try:
+            return cls(histories, directory)
+        except OSError:         # no fork (out of memory, process limit): a speed-up only
+            shutil.rmtree(directory, ignore_errors=True)
+            return None
 
     def collect(self, dest) -> bool:
         """Wait for the file and move it to ``dest``; False (nothing moved) if its process
-        failed."""
+        failed or the file cannot be moved there."""
         ok = self.job.wait() and self.path.is_file()
         if ok:
-            os.replace(self.path, dest)
+            try:
+                shutil.move(self.path, dest)      # a copy where dest is on another disk
+            except OSError:
+                Path(dest).unlink(missing_ok=True)
+                ok = False
         self.cancel()
         return ok
 
     def cancel(self) -> None:
         """Stop the process if it still runs and remove the scratch directory."""
-        _drop_job(self.job, str(self.directory), os.getpid())
+        _drop_job(self.job, str(self.directory), self._pid)
 
 
 def _drop_job(job, directory: str, pid: int) -> None:
@@ -331,7 +346,7 @@ def run_model(forest: "Forest | HDF5Forests", config: Config | None = None, *,
     hist = store if store is not None else _merge_histories(results)
     # the histories file may be written while the catalogues are merged (run() asks for
     # it when it writes a run directory with several local workers; write_run collects it)
-    early = (_EarlyHistories(hist, scratch("histories-file"))
+    early = (_EarlyHistories.start(hist, scratch("histories-file"))
              if histories_early and config.run.histories and where is not None
              and client is None and slots > 1 and par.default_start_method() == "fork"
              else None)
@@ -597,7 +612,10 @@ def write_run(result: RunResult, config: Config, out, *, overwrite: bool = False
     With ``workers`` (default ``run.workers``) above 1, the files are written by that many
     local workers at once (:func:`bhgrow.parallel.run_tasks`): the figures, the histories,
     the catalogues in parts of rows (joined here afterwards) and the rest; the files are
-    the same, byte for byte, as with one.
+    the same, byte for byte, as with one. If ``result.histories_early`` holds a histories
+    file being written by a forked process (``run_model(histories_early=True)``), that file
+    is moved into the run directory instead (written here if its process failed), and the
+    field is reset (a second call writes the histories itself).
     """
     from .parallel import default_start_method, n_local_workers, run_tasks
 
@@ -643,7 +661,8 @@ def write_run(result: RunResult, config: Config, out, *, overwrite: bool = False
                 run_tasks(tasks, n_proc, what="writing the run directory")
             for c in cats:
                 c.join()
-            if early is not None and not early.collect(tmp / "histories.h5"):
+            if early is not None and config.run.histories and \
+                    not early.collect(tmp / "histories.h5"):
                 # its process failed: written here (an error then says what went wrong)
                 write_histories(result.histories, tmp / "histories.h5")
         finally:
@@ -693,6 +712,7 @@ def run(config=None, *, trees=None, out=None, overwrite: bool = False,
                 else None
             scratch = tempfile.mkdtemp(prefix=f".{Checkpoint.directory_for(out).name}-ids-"
                                        f"{os.getpid()}-", dir=near) if near else None
+
             def meanwhile():
                 Cosmology.from_name(config.run.cosmology)
                 # the file's SHA-256 (provenance, checkpoint), kept by the forest: read

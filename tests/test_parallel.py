@@ -13,6 +13,8 @@ import os
 import signal
 import sys
 import time
+from functools import partial
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -253,8 +255,26 @@ def test_histories_of_several_chunks_are_kept_on_disk(sub, reference, tmp_path):
     from bhgrow.output import HistoryStore
     from bhgrow.pipeline import run
 
-    many = run(from_table({"run": {**FAST, "chunk_nodes": 6000}}), trees=sub,
-               out=tmp_path / "many", workers=2)
+    from bhgrow import pipeline
+
+    # who writes the histories file: one forked process, not this one (a file per call,
+    # as a forked process's memory is its own)
+    real, parent = pipeline.write_histories, os.getpid()
+    calls = tmp_path / "calls"
+    calls.mkdir()
+
+    def recorded(cols, path, **kw):
+        (calls / str(os.getpid())).touch()
+        return real(cols, path, **kw)
+
+    pipeline.write_histories = recorded
+    try:
+        many = run(from_table({"run": {**FAST, "chunk_nodes": 6000}}), trees=sub,
+                   out=tmp_path / "many", workers=2)
+    finally:
+        pipeline.write_histories = real
+    writers = [int(p.name) for p in calls.iterdir()]
+    assert len(writers) == 1 and writers[0] != parent
     store = many.histories
     assert isinstance(store, HistoryStore) and many.provenance["n_chunks"] > 2
     assert store.directory.parent == tmp_path
@@ -311,6 +331,7 @@ def test_histories_file_from_a_failed_forked_writer_is_written_here(sub, tmp_pat
 
     def fails_in_a_child(cols, path, **kw):
         if os.getpid() != parent:
+            Path(path).write_bytes(b"half a file")      # then the disk is full
             raise OSError(28, "No space left on device")
         writers.append(path)
         return real(cols, path, **kw)
@@ -340,9 +361,18 @@ def test_early_histories_writer_stopped_when_the_run_fails(sub, tmp_path, monkey
     def broken(*a, **k):
         raise RuntimeError("merge failed")
 
+    started = []
+    real_start = pipeline._EarlyHistories.start
+
+    def start(*a):
+        started.append(real_start(*a))          # held here: no finalizer can do the work
+        return started[-1]
+
+    monkeypatch.setattr(pipeline._EarlyHistories, "start", start)
     monkeypatch.setattr(pipeline, "_merger_table", broken)
     with pytest.raises(RuntimeError, match="merge failed"):
         run_model(sub, cfg, workers=2, checkpoint_dir=d, histories_early=True)
+    assert len(started) == 1 and not started[0].job._proc.is_alive()
     assert not list(tmp_path.glob(".run.partial-histories-file-*"))
     assert not mp.active_children()
     monkeypatch.undo()
@@ -354,6 +384,60 @@ def test_early_histories_writer_stopped_when_the_run_fails(sub, tmp_path, monkey
     gc.collect()
     assert not list(tmp_path.glob(".again.partial-histories-file-*"))
     assert not mp.active_children()
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="fork start method")
+def test_histories_written_here_where_no_process_can_be_forked(sub, tmp_path, monkeypatch):
+    # the early writer is a speed-up only: a failed fork (out of memory, process limit)
+    # leaves the histories to write_run, with nothing left behind
+    from bhgrow import parallel
+    from bhgrow.pipeline import run
+
+    def no_fork(self, fn):
+        raise OSError(12, "Cannot allocate memory")
+
+    monkeypatch.setattr(parallel.ForkedJob, "__init__", no_fork)
+    cfg = from_table({"run": {**FAST, "chunk_nodes": 6000}})
+    res = run(cfg, trees=sub, out=tmp_path / "out", workers=2)
+    assert res.provenance["n_chunks"] > 2 and (tmp_path / "out" / "histories.h5").is_file()
+    assert not list(tmp_path.glob(".out.partial-histories-file-*"))
+
+
+def _job_then_wait(pidfile):
+    from bhgrow.parallel import ForkedJob
+
+    job = ForkedJob(partial(time.sleep, 60))
+    pidfile.write_text(str(job._proc.pid))
+    time.sleep(60)
+
+
+def _gone(pid: int) -> bool:
+    try:
+        with open(f"/proc/{pid}/stat") as fh:
+            return fh.read().rsplit(")", 1)[1].split()[0] in "ZX"    # a zombie is gone
+    except OSError:
+        return True
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="fork start method")
+def test_forked_job_exits_when_its_parent_is_killed(tmp_path):
+    import multiprocessing as mp
+
+    pidfile = tmp_path / "job.pid"
+    parent = mp.get_context("fork").Process(target=_job_then_wait, args=(pidfile,))
+    parent.start()
+    for _ in range(200):
+        if pidfile.exists() and pidfile.read_text():
+            break
+        time.sleep(0.05)
+    job = int(pidfile.read_text())
+    os.kill(parent.pid, signal.SIGKILL)
+    parent.join()
+    for _ in range(100):
+        if _gone(job):
+            break
+        time.sleep(0.1)
+    assert _gone(job)
 
 
 @pytest.mark.skipif(not sys.platform.startswith("linux"), reason="fork start method")
