@@ -730,7 +730,8 @@ def _plan_chunk(forest, plan, model, run, cosmo, save_dir, finish, index: int, i
 _WORKER: dict = {}
 
 
-def _init_worker(task, saved: bool = False) -> None:
+def _as_forked_child() -> None:
+    """Set-up of a forked process working for this one (pool worker, :class:`ForkedJob`)."""
     import signal
 
     # Ctrl-C goes to the parent, which stops the workers itself (no tracebacks from them)
@@ -738,9 +739,13 @@ def _init_worker(task, saved: bool = False) -> None:
     # drop the free heap inherited from the parent, so the parent's writes to it (its
     # own chunks reuse it) are not copy-on-write copies (bhgrow._alloc)
     release_free_memory()
+    threading.Thread(target=_exit_with_parent, args=(os.getppid(),), daemon=True).start()
+
+
+def _init_worker(task, saved: bool = False) -> None:
+    _as_forked_child()
     _WORKER["task"] = task
     _WORKER["saved"] = saved
-    threading.Thread(target=_exit_with_parent, args=(os.getppid(),), daemon=True).start()
 
 
 def _exit_with_parent(ppid: int) -> None:
@@ -1013,13 +1018,7 @@ class ForkedJob:
 
 
 def _forked_call(fn) -> None:
-    import signal
-
-    signal.signal(signal.SIGINT, signal.SIG_IGN)
-    # as a pool worker: the parent's free heap dropped (its writes are then no copy-on-write
-    # faults here), and no lingering once the parent is gone
-    release_free_memory()
-    threading.Thread(target=_exit_with_parent, args=(os.getppid(),), daemon=True).start()
+    _as_forked_child()
     try:
         fn()
     except BaseException:  # noqa: BLE001 - the parent redoes the work and reports
