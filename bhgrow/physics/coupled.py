@@ -516,8 +516,62 @@ def advance(gas, metals, m_bh, c: Coefficients, dt, n_steps=None,
         integral of the gas (Msun Gyr). The hole grows
         by ``k accreted``; ``gas_end = gas + I dt - accreted - stars - wind - feedback``.
     """
+    kernel = _compiled()
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-        return _advance(gas, metals, m_bh, c, dt, n_steps, max_dlnm, prior_rate)
+        if kernel is None:
+            return _advance(gas, metals, m_bh, c, dt, n_steps, max_dlnm, prior_rate)
+        return _advance_compiled(kernel, gas, metals, m_bh, c, dt, n_steps, max_dlnm,
+                                 prior_rate)
+
+
+#: the compiled kernel (:mod:`bhgrow.physics._coupled_jit`) once loaded; False: not loaded
+#: yet; None: not available (numba missing, or ``BHGROW_JIT=0``)
+_KERNEL = False
+
+
+def _compiled():
+    """The compiled kernel of :func:`advance`, or None where the array code runs.
+
+    Loaded at the first call (importing numba and the kernel's cached machine code takes
+    ~0.3-0.5 s, compiling it afresh ~5 s once per installation), so commands that never
+    grow a black hole do not pay for it. ``BHGROW_JIT=0`` in the environment selects the
+    array code (the reference the kernel is tested against).
+    """
+    global _KERNEL
+    if _KERNEL is False:
+        import os
+        _KERNEL = None
+        if os.environ.get("BHGROW_JIT", "1").strip() not in ("0", "false", "no", "off"):
+            try:
+                from ._coupled_jit import advance_halos
+            except ImportError:
+                pass
+            else:
+                _KERNEL = advance_halos
+    return _KERNEL
+
+
+def _advance_compiled(kernel, gas, metals, m_bh, c: Coefficients, dt, n_steps, max_dlnm,
+                      prior_rate) -> IntervalResult:
+    """:func:`advance` by the compiled kernel (same arguments and results as ``_advance``)."""
+    def f64(x):
+        return np.ascontiguousarray(np.broadcast_to(np.asarray(x, dtype=np.float64), shape))
+
+    shape = np.shape(gas)
+    n = int(np.prod(shape))
+    g, z, m, t = f64(gas), f64(metals), f64(m_bh), f64(dt)
+    cf = Coefficients(*(f64(x) for x in c))
+    steps = np.ones(shape) if n_steps is None else f64(n_steps)
+    prior = np.full(shape, np.nan) if prior_rate is None else f64(prior_rate)
+    out = np.empty((5, n))
+    kernel(g.ravel(), z.ravel(), m.ravel(), cf.inflow.ravel(), cf.loss.ravel(),
+           cf.bondi_per_gas.ravel(), cf.edd.ravel(), cf.keep.ravel(), cf.per_unit.ravel(),
+           cf.metal_rate.ravel(), t.ravel(), steps.ravel(),
+           -1.0 if max_dlnm is None else float(max_dlnm), prior.ravel(), out)
+    g, z, m, acc, gint = (o.reshape(shape) for o in out)
+    return IntervalResult(gas=g, metals=z, m_bh=m, accreted=acc,
+                          stars_formed=cf.lock * gint, wind=(cf.loss - cf.lock) * gint,
+                          feedback=(cf.per_unit - 1.0) * acc, gas_integral=gint)
 
 
 def _advance(gas, metals, m_bh, c: Coefficients, dt, n_steps, max_dlnm,

@@ -29,6 +29,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.integrate import solve_ivp
 
+from bhgrow.physics import coupled
 from bhgrow.physics.coupled import Coefficients, advance, substeps
 from bhgrow.physics.gas import StarFormation
 
@@ -36,6 +37,19 @@ from bhgrow.physics.gas import StarFormation
 #: (Salpeter time 0.45 Gyr x eps / (1 - eps), memory); only a scale in these tests
 EDD = 22.0
 KEEP = 0.9
+
+
+@pytest.fixture(autouse=True, scope="module", params=["compiled", "array"])
+def implementation(request):
+    """Every test runs on both implementations of :func:`advance`: the compiled kernel
+    (:mod:`bhgrow.physics._coupled_jit`, the default) and the array code it is written from
+    (module scope, so the module's cached runs are made once per implementation)."""
+    with pytest.MonkeyPatch.context() as mp:
+        if request.param == "array":
+            mp.setattr(coupled, "_KERNEL", None)
+        else:
+            assert coupled._compiled() is not None, "the compiled kernel did not load"
+        yield request.param
 
 
 def _arr(v) -> np.ndarray:
@@ -351,7 +365,7 @@ def _random_cases():
 
 
 @pytest.fixture(scope="module")
-def random_runs():
+def random_runs(implementation):
     runs = []
     for cs in _random_cases():
         c = _coef(inflow=cs["inflow"], loss=cs["a"], lock=cs["lock"], metal_rate=cs["p"],
