@@ -167,6 +167,15 @@ def _bondi_mass(m0, k, bpg, gi):
 
 
 @_jit
+def _cap(x, m, kt):
+    """``np.minimum(x, m e^{kt})`` (Bondi growth capped at Eddington growth), with
+    ``e^{kt}`` evaluated only where ``x`` may reach it (``m (1 + kt) <= m e^{kt}``)."""
+    if x < 0.9999999 * (m * (1.0 + kt)):
+        return x
+    return _min(x, m * np.exp(kt))
+
+
+@_jit
 def _bondi_switch_time(g0, inflow, bpg, edd, mbar, t, lam):
     g_eq = inflow / lam
     g_star = edd / (bpg * mbar)
@@ -319,10 +328,11 @@ def _halo(g, z, m, inflow, a, bpg, edd, k, p, mu_rate, left, steps, max_dlnm, ra
             else:
                 tb = _bondi_switch_time(g, inflow, bpg, edd, m, _min(t, h_bondi), lam0)
             kt = k * edd * tb
-            ekt = np.exp(kt)
             guess = math.isfinite(rate) and not last
             if guess:
-                m_pred = np.sqrt(m * _min(m * np.exp(rate * tb), m * ekt))
+                # (e^{rate tb} <= e^{kt} where rate tb <= kt: the cap then needs no e^{kt})
+                m_rate = m * np.exp(rate * tb)
+                m_pred = np.sqrt(m * (m_rate if rate * tb <= kt else _cap(m_rate, m, kt)))
                 gb, gib, _, _, _ = _bondi_phase(g, inflow, a, bpg, p, tb, m_pred, -1.0)
                 m1b = _bondi_mass(m, k, bpg, gib)
                 if bpg * gb * m1b > _MARGIN * edd:
@@ -335,13 +345,12 @@ def _halo(g, z, m, inflow, a, bpg, edd, k, p, mu_rate, left, steps, max_dlnm, ra
             if bpg * gb * m1b > _P_TOL * edd and not last and not guess:
                 tb = _bondi_runaway(g, m, inflow, a, k, edd, bpg, p, tb, m, gb, gib)
                 kt = k * edd * tb
-                ekt = np.exp(kt)
                 gb, gib, _, _, _ = _bondi_phase(g, inflow, a, bpg, p, tb, m, -1.0)
                 m1b = _bondi_mass(m, k, bpg, gib)
-            mbar = np.sqrt(m * _min(m1b, m * ekt))
+            mbar = np.sqrt(m * _cap(m1b, m, kt))
             if not guess:
                 _, gic, _, _, _ = _bondi_phase(g, inflow, a, bpg, p, tb, mbar, -1.0)
-                mbar = np.sqrt(m * _min(_bondi_mass(m, k, bpg, gic), m * ekt))
+                mbar = np.sqrt(m * _cap(_bondi_mass(m, k, bpg, gic), m, kt))
             gb, gib, accb, lam, e_lam = _bondi_phase(g, inflow, a, bpg, p, tb, mbar, -1.0)
             if last:
                 over = _max(accb - m * np.expm1(kt) / k, 0.0)

@@ -63,6 +63,8 @@ from typing import NamedTuple
 
 import numpy as np
 
+from . import _jit
+
 __all__ = ["Coefficients", "IntervalResult", "advance", "substeps"]
 
 #: phases per halo, beyond two per Bondi step, before the remaining time is taken in one
@@ -516,39 +518,12 @@ def advance(gas, metals, m_bh, c: Coefficients, dt, n_steps=None,
         integral of the gas (Msun Gyr). The hole grows
         by ``k accreted``; ``gas_end = gas + I dt - accreted - stars - wind - feedback``.
     """
-    kernel = _compiled()
+    compiled = _jit.kernels()
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-        if kernel is None:
+        if compiled is None:
             return _advance(gas, metals, m_bh, c, dt, n_steps, max_dlnm, prior_rate)
-        return _advance_compiled(kernel, gas, metals, m_bh, c, dt, n_steps, max_dlnm,
-                                 prior_rate)
-
-
-#: the compiled kernel (:mod:`bhgrow.physics._coupled_jit`) once loaded; False: not loaded
-#: yet; None: not available (numba missing, or ``BHGROW_JIT=0``)
-_KERNEL = False
-
-
-def _compiled():
-    """The compiled kernel of :func:`advance`, or None where the array code runs.
-
-    Loaded at the first call (importing numba and the kernel's cached machine code takes
-    ~0.3-0.5 s, compiling it afresh ~5 s once per installation), so commands that never
-    grow a black hole do not pay for it. ``BHGROW_JIT=0`` in the environment selects the
-    array code (the reference the kernel is tested against).
-    """
-    global _KERNEL
-    if _KERNEL is False:
-        import os
-        _KERNEL = None
-        if os.environ.get("BHGROW_JIT", "1").strip() not in ("0", "false", "no", "off"):
-            try:
-                from ._coupled_jit import advance_halos
-            except ImportError:
-                pass
-            else:
-                _KERNEL = advance_halos
-    return _KERNEL
+        return _advance_compiled(compiled.advance_halos, gas, metals, m_bh, c, dt, n_steps,
+                                 max_dlnm, prior_rate)
 
 
 def _advance_compiled(kernel, gas, metals, m_bh, c: Coefficients, dt, n_steps, max_dlnm,

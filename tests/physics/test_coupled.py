@@ -29,7 +29,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.integrate import solve_ivp
 
-from bhgrow.physics import coupled
+from bhgrow.physics import _jit
 from bhgrow.physics.coupled import Coefficients, advance, substeps
 from bhgrow.physics.gas import StarFormation
 
@@ -46,9 +46,9 @@ def implementation(request):
     (module scope, so the module's cached runs are made once per implementation)."""
     with pytest.MonkeyPatch.context() as mp:
         if request.param == "array":
-            mp.setattr(coupled, "_KERNEL", None)
+            mp.setattr(_jit, "_KERNELS", None)
         else:
-            assert coupled._compiled() is not None, "the compiled kernel did not load"
+            assert _jit.kernels() is not None, "the compiled kernels did not load"
         yield request.param
 
 

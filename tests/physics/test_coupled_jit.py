@@ -21,7 +21,7 @@ import pytest
 from bhgrow.config import load_config
 from bhgrow.cosmology import Cosmology
 from bhgrow.engine import run_forest
-from bhgrow.physics import coupled
+from bhgrow.physics import _jit, coupled
 from bhgrow.physics.coupled import Coefficients, advance, substeps
 from bhgrow.trees.toy import toy_forest
 
@@ -69,7 +69,7 @@ def _scaled_errors(state, c, a, b):
 
 
 def test_the_kernel_loads():
-    assert coupled._compiled() is not None
+    assert _jit.kernels() is not None
 
 
 @pytest.mark.parametrize("seed", [0, 1])
@@ -111,11 +111,13 @@ def test_each_halo_depends_on_itself_alone():
 
 
 def test_engine_run_agrees_with_the_array_code(monkeypatch):
+    # both compiled kernels (the solver and the quiet-halo reservoir step) against the array
+    # code, over a whole engine run
     cfg = load_config()
     cosmo = Cosmology.from_name(cfg.run.cosmology)
     forest = toy_forest(300, seed=11, n_snap=25, box_mpc=30.0)
     fast = run_forest(forest, cfg.model, cfg.run, cosmo)
-    monkeypatch.setattr(coupled, "_KERNEL", None)
+    monkeypatch.setattr(_jit, "_KERNELS", None)
     ref = run_forest(forest, cfg.model, cfg.run, cosmo)
     assert len(fast.black_holes) == len(ref.black_holes) > 50
     assert np.array_equal(fast.black_holes.bh_id, ref.black_holes.bh_id)
@@ -124,7 +126,7 @@ def test_engine_run_agrees_with_the_array_code(monkeypatch):
 
 
 def test_environment_selects_the_array_code():
-    code = "from bhgrow.physics import coupled; print(coupled._compiled() is None)"
+    code = "from bhgrow.physics import _jit; print(_jit.kernels() is None)"
     for value, expect in (("0", "True"), ("1", "False")):
         out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
                              env={**os.environ, "BHGROW_JIT": value}, check=True)

@@ -148,6 +148,47 @@ def test_engine_step_without_metal_flows_is_the_same_step():
     assert lean.metals_outflow_msun is None and lean.metals_locked_msun is None
 
 
+@pytest.mark.parametrize("case", CASES)
+def test_compiled_quiet_step_matches_solve_ivp(case):
+    # the engine's compiled quiet-halo step (bhgrow.physics._gas_jit) against the same
+    # independent solution as above (scipy solve_ivp, Virtanen et al. 2020); only the rows
+    # selected are written
+    from bhgrow.physics._gas_jit import quiet_step
+
+    sf = StarFormation(efficiency=0.05, v0_kms=200.0, alpha=2.0, recycle=0.43, metal_yield=0.03)
+    mg0, ms0, mz0, inflow, tdyn, vc, dt = case
+    gas_, stars, metals, blown = (np.array([v, v]) for v in (mg0, ms0, mz0, -1.0))
+    quiet_step(sf.efficiency, sf.v0_kms, sf.alpha, sf.recycle, sf.metal_yield,
+               np.full(2, inflow), np.full(2, tdyn), np.full(2, vc), np.full(2, dt),
+               np.array([True, False]), gas_, stars, metals, blown)
+    ref = _reference(sf, *case)
+    got = np.array([gas_[0], metals[0], stars[0], blown[0]])
+    scale = np.maximum(np.abs(ref[:4]), 1e-12 * (mg0 + mz0 + inflow * dt + 1.0))
+    np.testing.assert_array_less(np.abs(got - ref[:4]) / scale, 1e-8)
+    assert (gas_[1], stars[1], metals[1], blown[1]) == (mg0, ms0, mz0, -1.0)
+
+
+def test_compiled_quiet_step_is_the_array_step():
+    # the kernel follows StarFormation._evolve formula by formula: round-off apart, the same
+    # numbers over a wide random sweep (a dt from 1e-6 to 1e3, both series branches)
+    from bhgrow.physics._gas_jit import quiet_step
+
+    rng = np.random.default_rng(5)
+    n = 50_000
+    sf = StarFormation()
+    cols = [10.0 ** rng.uniform(lo, hi, n) for lo, hi in
+            ((4, 11), (3, 11), (0, 8), (5, 11), (-3, 1), (1, 3), (-4, 0.5))]
+    cols[0][::17] = 0.0
+    ref = sf._evolve(*cols, metal_flows=False)
+    gas_, stars, metals = (c.copy() for c in cols[:3])
+    blown = np.zeros(n)
+    quiet_step(sf.efficiency, sf.v0_kms, sf.alpha, sf.recycle, sf.metal_yield, *cols[3:],
+               np.ones(n, dtype=bool), gas_, stars, metals, blown)
+    for got, want in ((gas_, ref.gas), (stars, ref.stars), (metals, ref.metals),
+                      (blown, ref.outflow_msun)):
+        np.testing.assert_allclose(got, want, rtol=1e-13, atol=0.0)
+
+
 def test_step_steady_state():
     # closed form: for dt >> 1/a, M_g -> I/a and M_Z -> p I / a^2, i.e. the equilibrium
     # metallicity Z_eq = y (1 - R) / (1 - R + eta) of the "bathtub" model with pristine inflow
