@@ -61,7 +61,7 @@ from . import pairs, rng
 from ._alloc import keep_freed_memory
 from .config import Model, RunSettings
 from .cosmology import Cosmology
-from .physics import _jit
+from .physics import _kernels
 from .physics import accretion as acc
 from .physics import coupled as cp
 from .physics import seeding as sd
@@ -490,10 +490,9 @@ def _reservoir_step(model, quiet, gas, stars, metals, inflow, t_dyn, v_c, dts,
     stay in the CPU cache (measured: half the time of whole-slice arrays of 5e5 rows).
     """
     sf = model.star_formation
-    compiled = _jit.kernels() if type(sf) is StarFormation else None
-    if compiled is not None:        # the same step, one halo at a time (bhgrow.physics._jit)
-        compiled.quiet_step(sf.efficiency, sf.v0_kms, sf.alpha, sf.recycle, sf.metal_yield,
-                            inflow, t_dyn, v_c, dts, quiet, gas, stars, metals, blown)
+    compiled = _kernels.kernels() if type(sf) is StarFormation else None
+    if compiled is not None:        # the same step, one halo at a time (physics._kernels)
+        compiled.quiet_step(sf, inflow, t_dyn, v_c, dts, quiet, gas, stars, metals, blown)
         return
     for b in _blocks(quiet.size, _BLOCK):
         res = model.star_formation._evolve(gas[b], stars[b], metals[b], inflow[b], t_dyn[b],

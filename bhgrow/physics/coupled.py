@@ -63,7 +63,7 @@ from typing import NamedTuple
 
 import numpy as np
 
-from . import _jit
+from . import _kernels
 
 __all__ = ["Coefficients", "IntervalResult", "advance", "substeps"]
 
@@ -518,35 +518,33 @@ def advance(gas, metals, m_bh, c: Coefficients, dt, n_steps=None,
         integral of the gas (Msun Gyr). The hole grows
         by ``k accreted``; ``gas_end = gas + I dt - accreted - stars - wind - feedback``.
     """
-    compiled = _jit.kernels()
+    compiled = _kernels.kernels()
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         if compiled is None:
             return _advance(gas, metals, m_bh, c, dt, n_steps, max_dlnm, prior_rate)
-        return _advance_compiled(compiled.advance_halos, gas, metals, m_bh, c, dt, n_steps,
-                                 max_dlnm, prior_rate)
+        return _advance_compiled(compiled, gas, metals, m_bh, c, dt, n_steps, max_dlnm,
+                                 prior_rate)
 
 
-def _advance_compiled(kernel, gas, metals, m_bh, c: Coefficients, dt, n_steps, max_dlnm,
+def _advance_compiled(compiled, gas, metals, m_bh, c: Coefficients, dt, n_steps, max_dlnm,
                       prior_rate) -> IntervalResult:
-    """:func:`advance` by the compiled kernel (same arguments and results as ``_advance``)."""
-    def f64(x):
-        return np.ascontiguousarray(np.broadcast_to(np.asarray(x, dtype=np.float64), shape))
-
+    """:func:`advance` by the compiled kernel (:mod:`bhgrow.physics._kernels`; same arguments
+    and results as ``_advance``, the array code it follows)."""
     shape = np.shape(gas)
-    n = int(np.prod(shape))
-    g, z, m, t = f64(gas), f64(metals), f64(m_bh), f64(dt)
-    cf = Coefficients(*(f64(x) for x in c))
-    steps = np.ones(shape) if n_steps is None else f64(n_steps)
-    prior = np.full(shape, np.nan) if prior_rate is None else f64(prior_rate)
-    out = np.empty((5, n))
-    kernel(g.ravel(), z.ravel(), m.ravel(), cf.inflow.ravel(), cf.loss.ravel(),
-           cf.bondi_per_gas.ravel(), cf.edd.ravel(), cf.keep.ravel(), cf.per_unit.ravel(),
-           cf.metal_rate.ravel(), t.ravel(), steps.ravel(),
-           -1.0 if max_dlnm is None else float(max_dlnm), prior.ravel(), out)
+
+    def flat(x):
+        return np.broadcast_to(np.asarray(x, dtype=np.float64), shape).ravel()
+
+    cf = Coefficients(*(flat(x) for x in c))
+    steps = np.ones(cf.inflow.size) if n_steps is None else flat(n_steps)
+    prior = np.full(cf.inflow.size, np.nan) if prior_rate is None else flat(prior_rate)
+    out = compiled.advance_halos(flat(gas), flat(metals), flat(m_bh), cf, flat(dt), steps,
+                                 max_dlnm, prior)
     g, z, m, acc, gint = (o.reshape(shape) for o in out)
-    return IntervalResult(gas=g, metals=z, m_bh=m, accreted=acc,
-                          stars_formed=cf.lock * gint, wind=(cf.loss - cf.lock) * gint,
-                          feedback=(cf.per_unit - 1.0) * acc, gas_integral=gint)
+    lock, loss, per_unit = (x.reshape(shape) for x in (cf.lock, cf.loss, cf.per_unit))
+    return IntervalResult(gas=g, metals=z, m_bh=m, accreted=acc, stars_formed=lock * gint,
+                          wind=(loss - lock) * gint, feedback=(per_unit - 1.0) * acc,
+                          gas_integral=gint)
 
 
 def _advance(gas, metals, m_bh, c: Coefficients, dt, n_steps, max_dlnm,

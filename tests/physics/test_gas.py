@@ -148,18 +148,25 @@ def test_engine_step_without_metal_flows_is_the_same_step():
     assert lean.metals_outflow_msun is None and lean.metals_locked_msun is None
 
 
+def _quiet_step():
+    from bhgrow.physics import _kernels
+
+    k = _kernels.kernels()
+    assert k is not None, "the compiled kernels did not load"
+    return k.quiet_step
+
+
 @pytest.mark.parametrize("case", CASES)
 def test_compiled_quiet_step_matches_solve_ivp(case):
-    # the engine's compiled quiet-halo step (bhgrow.physics._gas_jit) against the same
+    # the engine's compiled quiet-halo step (bhgrow.physics._kernels) against the same
     # independent solution as above (scipy solve_ivp, Virtanen et al. 2020); only the rows
     # selected are written
-    from bhgrow.physics._gas_jit import quiet_step
+    quiet_step = _quiet_step()
 
     sf = StarFormation(efficiency=0.05, v0_kms=200.0, alpha=2.0, recycle=0.43, metal_yield=0.03)
     mg0, ms0, mz0, inflow, tdyn, vc, dt = case
     gas_, stars, metals, blown = (np.array([v, v]) for v in (mg0, ms0, mz0, -1.0))
-    quiet_step(sf.efficiency, sf.v0_kms, sf.alpha, sf.recycle, sf.metal_yield,
-               np.full(2, inflow), np.full(2, tdyn), np.full(2, vc), np.full(2, dt),
+    quiet_step(sf, np.full(2, inflow), np.full(2, tdyn), np.full(2, vc), np.full(2, dt),
                np.array([True, False]), gas_, stars, metals, blown)
     ref = _reference(sf, *case)
     got = np.array([gas_[0], metals[0], stars[0], blown[0]])
@@ -171,8 +178,7 @@ def test_compiled_quiet_step_matches_solve_ivp(case):
 def test_compiled_quiet_step_is_the_array_step():
     # the kernel follows StarFormation._evolve formula by formula: round-off apart, the same
     # numbers over a wide random sweep (a dt from 1e-6 to 1e3, both series branches)
-    from bhgrow.physics._gas_jit import quiet_step
-
+    quiet_step = _quiet_step()
     rng = np.random.default_rng(5)
     n = 50_000
     sf = StarFormation()
@@ -182,8 +188,7 @@ def test_compiled_quiet_step_is_the_array_step():
     ref = sf._evolve(*cols, metal_flows=False)
     gas_, stars, metals = (c.copy() for c in cols[:3])
     blown = np.zeros(n)
-    quiet_step(sf.efficiency, sf.v0_kms, sf.alpha, sf.recycle, sf.metal_yield, *cols[3:],
-               np.ones(n, dtype=bool), gas_, stars, metals, blown)
+    quiet_step(sf, *cols[3:], np.ones(n, dtype=bool), gas_, stars, metals, blown)
     for got, want in ((gas_, ref.gas), (stars, ref.stars), (metals, ref.metals),
                       (blown, ref.outflow_msun)):
         np.testing.assert_allclose(got, want, rtol=1e-13, atol=0.0)

@@ -1,4 +1,4 @@
-"""The compiled kernel of the coupled solver (:mod:`bhgrow.physics._coupled_jit`) against the
+"""The compiled kernel of the coupled solver (:mod:`bhgrow.physics._kernels`, C) against the
 array code it is written from (``bhgrow.physics.coupled._advance``).
 
 The physics checks of the solver (closed-form limits, solve_ivp; Salpeter 1964, Bondi 1952,
@@ -21,7 +21,7 @@ import pytest
 from bhgrow.config import load_config
 from bhgrow.cosmology import Cosmology
 from bhgrow.engine import run_forest
-from bhgrow.physics import _jit, coupled
+from bhgrow.physics import _kernels, coupled
 from bhgrow.physics.coupled import Coefficients, advance, substeps
 from bhgrow.trees.toy import toy_forest
 
@@ -69,7 +69,7 @@ def _scaled_errors(state, c, a, b):
 
 
 def test_the_kernel_loads():
-    assert _jit.kernels() is not None
+    assert _kernels.kernels() is not None
 
 
 @pytest.mark.parametrize("seed", [0, 1])
@@ -117,7 +117,7 @@ def test_engine_run_agrees_with_the_array_code(monkeypatch):
     cosmo = Cosmology.from_name(cfg.run.cosmology)
     forest = toy_forest(300, seed=11, n_snap=25, box_mpc=30.0)
     fast = run_forest(forest, cfg.model, cfg.run, cosmo)
-    monkeypatch.setattr(_jit, "_KERNELS", None)
+    monkeypatch.setattr(_kernels, "_KERNELS", None)
     ref = run_forest(forest, cfg.model, cfg.run, cosmo)
     assert len(fast.black_holes) == len(ref.black_holes) > 50
     assert np.array_equal(fast.black_holes.bh_id, ref.black_holes.bh_id)
@@ -126,8 +126,24 @@ def test_engine_run_agrees_with_the_array_code(monkeypatch):
 
 
 def test_environment_selects_the_array_code():
-    code = "from bhgrow.physics import _jit; print(_jit.kernels() is None)"
+    code = "from bhgrow.physics import _kernels; print(_kernels.kernels() is None)"
     for value, expect in (("0", "True"), ("1", "False")):
         out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
-                             env={**os.environ, "BHGROW_JIT": value}, check=True)
+                             env={**os.environ, "BHGROW_KERNELS": value}, check=True)
         assert out.stdout.strip() == expect
+
+
+def test_the_built_extension_is_the_one_the_loader_calls():
+    from bhgrow.physics import _ckernels
+
+    assert _ckernels.VERSION == _kernels._VERSION
+
+
+def test_a_stale_build_is_not_used(monkeypatch):
+    from bhgrow.physics import _ckernels
+
+    monkeypatch.setattr(_ckernels, "VERSION", _kernels._VERSION + 1)
+    monkeypatch.setattr(_kernels, "_KERNELS", False)
+    with pytest.warns(RuntimeWarning, match="out of date"):
+        assert _kernels.kernels() is None
+    monkeypatch.setattr(_kernels, "_KERNELS", False)   # loaded afresh by the next user
