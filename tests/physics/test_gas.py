@@ -175,13 +175,15 @@ def test_compiled_quiet_step_matches_solve_ivp(case):
     assert (gas_[1], stars[1], metals[1], blown[1]) == (mg0, ms0, mz0, -1.0)
 
 
-def test_compiled_quiet_step_is_the_array_step():
+@pytest.mark.parametrize("alpha", [2.0, 0.0, 1.0, 1.5])
+def test_compiled_quiet_step_is_the_array_step(alpha):
     # the kernel follows StarFormation._evolve formula by formula: round-off apart, the same
-    # numbers over a wide random sweep (a dt from 1e-6 to 1e3, both series branches)
+    # numbers over a wide random sweep (a dt from 1e-6 to 1e3, both series branches; the
+    # mass-loading slopes the kernel takes as products, and one it takes with pow)
     quiet_step = _quiet_step()
     rng = np.random.default_rng(5)
     n = 50_000
-    sf = StarFormation()
+    sf = StarFormation(alpha=alpha)
     cols = [10.0 ** rng.uniform(lo, hi, n) for lo, hi in
             ((4, 11), (3, 11), (0, 8), (5, 11), (-3, 1), (1, 3), (-4, 0.5))]
     cols[0][::17] = 0.0
