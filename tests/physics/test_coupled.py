@@ -30,6 +30,7 @@ from hypothesis import strategies as st
 from scipy.integrate import solve_ivp
 
 from bhgrow.physics import _kernels
+from conftest import require_kernels
 from bhgrow.physics.coupled import Coefficients, advance, substeps
 from bhgrow.physics.gas import StarFormation
 
@@ -48,7 +49,7 @@ def implementation(request):
         if request.param == "array":
             mp.setattr(_kernels, "_KERNELS", None)
         else:
-            assert _kernels.kernels() is not None, "the compiled kernels did not load"
+            require_kernels()
         yield request.param
 
 

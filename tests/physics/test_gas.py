@@ -149,11 +149,9 @@ def test_engine_step_without_metal_flows_is_the_same_step():
 
 
 def _quiet_step():
-    from bhgrow.physics import _kernels
+    from conftest import require_kernels
 
-    k = _kernels.kernels()
-    assert k is not None, "the compiled kernels did not load"
-    return k.quiet_step
+    return require_kernels().quiet_step
 
 
 @pytest.mark.parametrize("case", CASES)

@@ -22,6 +22,7 @@ from bhgrow.config import load_config
 from bhgrow.cosmology import Cosmology
 from bhgrow.engine import run_forest
 from bhgrow.physics import _kernels, coupled
+from conftest import require_kernels
 from bhgrow.physics.coupled import Coefficients, advance, substeps
 from bhgrow.trees.toy import toy_forest
 
@@ -68,8 +69,9 @@ def _scaled_errors(state, c, a, b):
     }
 
 
-def test_the_kernel_loads():
-    assert _kernels.kernels() is not None
+@pytest.fixture(autouse=True)
+def kernels():
+    return require_kernels()
 
 
 @pytest.mark.parametrize("seed", [0, 1])
