@@ -488,6 +488,9 @@ def _reservoir_step(model, quiet, gas, stars, metals, inflow, t_dyn, v_c, dts,
     Most halos of a slice are quiet, so the step runs on the whole slice (no gathers) and
     only the quiet rows are kept; in blocks of :data:`_BLOCK` rows, whose ~20 temporaries
     stay in the CPU cache (measured: half the time of whole-slice arrays of 5e5 rows).
+    Where the compiled kernels are built (:mod:`bhgrow.physics._kernels`) and the model's
+    star formation is :class:`StarFormation` itself, the same step runs in C, one halo at a
+    time, on the quiet rows only (25 instead of ~50 ns per halo; equal to round-off).
     """
     sf = model.star_formation
     compiled = _kernels.kernels() if type(sf) is StarFormation else None

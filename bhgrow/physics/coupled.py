@@ -31,6 +31,11 @@ The system is solved *piecewise in closed form* (:func:`advance`), not by small 
   where the gas (rising towards its equilibrium) or the hole's mass (growing) makes the
   Bondi rate reach the Eddington rate, or at the end.
 
+:func:`advance` runs this loop in C, one halo at a time, where bhgrow's compiled kernels are
+built (:mod:`bhgrow.physics._kernels`); the array code here (``_advance``) is the reference
+the kernel follows formula by formula and is tested against, and runs where the kernels are
+missing or switched off (``BHGROW_KERNELS=0``).
+
 Only the frozen ``Mbar`` of Bondi phases is an approximation, so the step limit
 (:func:`substeps`) bounds the change of ``ln M`` over a Bondi phase; Eddington-limited
 growth and reservoir exchanges of any speed (``a dt >> 1``) need no substeps. Star
