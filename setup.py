@@ -1,7 +1,7 @@
 """Build of bhgrow's one compiled extension (everything else is in pyproject.toml).
 
-``bhgrow.physics._ckernels`` (C, no dependencies but Python's headers) holds the engine's
-two compiled kernels (see ``bhgrow/physics/_kernels.py``). It is optional: where it cannot be
+``bhgrow._ckernels`` (C, no dependencies but Python's headers) holds the engine's
+compiled kernels (see ``bhgrow/_kernels.py``). It is optional: where it cannot be
 built (no C compiler), the install goes on and the engine runs the array code it was
 written from, with the same results to round-off.
 """
@@ -14,5 +14,5 @@ from setuptools import Extension, setup
 # code's order of operations)
 _ARGS = [] if sys.platform == "win32" else ["-ffp-contract=off"]
 
-setup(ext_modules=[Extension("bhgrow.physics._ckernels", ["bhgrow/physics/_ckernels.c"],
+setup(ext_modules=[Extension("bhgrow._ckernels", ["bhgrow/_ckernels.c"],
                              extra_compile_args=_ARGS, optional=True)])

@@ -61,7 +61,7 @@ from . import pairs, rng
 from ._alloc import keep_freed_memory
 from .config import Model, RunSettings
 from .cosmology import Cosmology
-from .physics import _kernels
+from . import _kernels
 from .physics import accretion as acc
 from .physics import coupled as cp
 from .physics import seeding as sd
@@ -365,15 +365,22 @@ def _snapshot(w: _Walk, k: int) -> None:
     d0 = np.where(has_desc, d_sl, rows)
     dts = (t_by_num[forest.snap[d0]] if t_by_num is not None else
            t_snap[np.searchsorted(offsets, d0, side="right") - 1]) - t_snap[k]
-    smooth = np.zeros(rows.size)
+    smooth = None
     if d.size:
         lo = int(d.min())
         span = int(d.max()) - lo + 1
-        progs = prog_index[prog_offsets[lo]:prog_offsets[lo + span]]
-        prog_sum = np.bincount(desc[progs] - lo, weights=mass_h[progs], minlength=span)
-        mains = np.flatnonzero(main_prog[d] == go)
-        dm = d[mains]
-        smooth[go[mains] - sl.start] = np.maximum(mass_h[dm] - prog_sum[dm - lo], 0.0)
+        compiled = _kernels.kernels()
+        if compiled is not None:        # the same sums in the same order, in C
+            smooth = compiled.smooth_growth(forest, sl.start, sl.stop)
+        if smooth is None:
+            smooth = np.zeros(rows.size)
+            progs = prog_index[prog_offsets[lo]:prog_offsets[lo + span]]
+            prog_sum = np.bincount(desc[progs] - lo, weights=mass_h[progs], minlength=span)
+            mains = np.flatnonzero(main_prog[d] == go)
+            dm = d[mains]
+            smooth[go[mains] - sl.start] = np.maximum(mass_h[dm] - prog_sum[dm - lo], 0.0)
+    else:
+        smooth = np.zeros(rows.size)
     np.copyto(gas_sl, fb_eff * m, where=new)
 
     # --- coalescences due by now --------------------------------------------------------
@@ -488,13 +495,13 @@ def _reservoir_step(model, quiet, gas, stars, metals, inflow, t_dyn, v_c, dts,
     Most halos of a slice are quiet, so the step runs on the whole slice (no gathers) and
     only the quiet rows are kept; in blocks of :data:`_BLOCK` rows, whose ~20 temporaries
     stay in the CPU cache (measured: half the time of whole-slice arrays of 5e5 rows).
-    Where the compiled kernels are built (:mod:`bhgrow.physics._kernels`) and the model's
+    Where the compiled kernels are built (:mod:`bhgrow._kernels`) and the model's
     star formation is :class:`StarFormation` itself, the same step runs in C, one halo at a
     time, on the quiet rows only (25 instead of ~50 ns per halo; equal to round-off).
     """
     sf = model.star_formation
     compiled = _kernels.kernels() if type(sf) is StarFormation else None
-    if compiled is not None:        # the same step, one halo at a time (physics._kernels)
+    if compiled is not None:        # the same step, one halo at a time (bhgrow._kernels)
         compiled.quiet_step(sf, inflow, t_dyn, v_c, dts, quiet, gas, stars, metals, blown)
         return
     for b in _blocks(quiet.size, _BLOCK):

@@ -40,6 +40,9 @@ def hash64(keys: np.ndarray, step: int, purpose: int) -> np.ndarray:
 
 def uniform(keys: np.ndarray, step: int, purpose: int) -> np.ndarray:
     """Uniform doubles in [0, 1) from the top 53 bits of :func:`hash64`."""
+    compiled = _compiled(keys) if np.asarray(keys).dtype == np.uint64 else None
+    if compiled is not None:        # the same bits, in C (bhgrow._kernels)
+        return compiled.uniform(((4 * step + purpose + 1) * _GAMMA) & _M64, keys)
     return (hash64(keys, step, purpose) >> _S11).astype(np.float64) * (2.0**-53)
 
 
@@ -57,5 +60,20 @@ def normal(keys: np.ndarray, step: int, purpose: int) -> np.ndarray:
 def stream_keys(seed: int, ids: np.ndarray) -> np.ndarray:
     """Stream key of each id (forest, node or black hole): a hash of (seed, id)."""
     s = mix64(np.array([(int(seed) * _GAMMA + 0x243F6A8885A308D3) & _M64], dtype=np.uint64))
-    fid = np.asarray(ids).astype(np.uint64)
+    ids = np.asarray(ids)
+    compiled = _compiled(ids) if ids.dtype == np.int64 and ids.ndim == 1 else None
+    if compiled is not None:        # the same bits, in C (bhgrow._kernels)
+        return compiled.stream_keys(int(s[0]), _GAMMA, ids)
+    fid = ids.astype(np.uint64)
     return mix64(mix64(fid ^ s) + np.uint64(_GAMMA))
+
+
+def _compiled(a: np.ndarray):
+    """The compiled kernels for a 1-d array of 64 or more values (smaller ones, and other
+    shapes, stay in numpy, where the call costs less than the look-up)."""
+    a = np.asarray(a)
+    if a.ndim != 1 or a.size < 64:
+        return None
+    from ._kernels import kernels
+
+    return kernels()

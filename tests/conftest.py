@@ -8,10 +8,10 @@ import pytest
 
 
 def require_kernels():
-    """The compiled kernels (:mod:`bhgrow.physics._kernels`), or skip the test where the C
+    """The compiled kernels (:mod:`bhgrow._kernels`), or skip the test where the C
     extension was not built (no compiler at install time). CI sets
     ``BHGROW_REQUIRE_KERNELS=1`` (``.ci/run``), which turns the skip into a failure."""
-    from bhgrow.physics import _kernels
+    from bhgrow import _kernels
 
     k = _kernels.kernels()
     if k is None:

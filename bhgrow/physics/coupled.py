@@ -32,7 +32,7 @@ The system is solved *piecewise in closed form* (:func:`advance`), not by small 
   Bondi rate reach the Eddington rate, or at the end.
 
 :func:`advance` runs this loop in C, one halo at a time, where bhgrow's compiled kernels are
-built (:mod:`bhgrow.physics._kernels`); the array code here (``_advance``) is the reference
+built (:mod:`bhgrow._kernels`); the array code here (``_advance``) is the reference
 the kernel follows formula by formula and is tested against, and runs where the kernels are
 missing or switched off (``BHGROW_KERNELS=0``).
 
@@ -68,7 +68,7 @@ from typing import NamedTuple
 
 import numpy as np
 
-from . import _kernels
+from .. import _kernels
 
 __all__ = ["Coefficients", "IntervalResult", "advance", "substeps"]
 
@@ -533,7 +533,7 @@ def advance(gas, metals, m_bh, c: Coefficients, dt, n_steps=None,
 
 def _advance_compiled(compiled, gas, metals, m_bh, c: Coefficients, dt, n_steps, max_dlnm,
                       prior_rate) -> IntervalResult:
-    """:func:`advance` by the compiled kernel (:mod:`bhgrow.physics._kernels`; same arguments
+    """:func:`advance` by the compiled kernel (:mod:`bhgrow._kernels`; same arguments
     and results as ``_advance``, the array code it follows)."""
     shape = np.shape(gas)
 

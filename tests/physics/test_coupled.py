@@ -29,7 +29,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.integrate import solve_ivp
 
-from bhgrow.physics import _kernels
+from bhgrow import _kernels
 from conftest import require_kernels
 from bhgrow.physics.coupled import Coefficients, advance, substeps
 from bhgrow.physics.gas import StarFormation
@@ -43,7 +43,7 @@ KEEP = 0.9
 @pytest.fixture(autouse=True, scope="module", params=["compiled", "array"])
 def implementation(request):
     """Every test runs on both implementations of :func:`advance`: the compiled kernel
-    (:mod:`bhgrow.physics._kernels`, the default) and the array code it is written from
+    (:mod:`bhgrow._kernels`, the default) and the array code it is written from
     (module scope, so the module's cached runs are made once per implementation)."""
     with pytest.MonkeyPatch.context() as mp:
         if request.param == "array":

@@ -156,7 +156,7 @@ def _quiet_step():
 
 @pytest.mark.parametrize("case", CASES)
 def test_compiled_quiet_step_matches_solve_ivp(case):
-    # the engine's compiled quiet-halo step (bhgrow.physics._kernels) against the same
+    # the engine's compiled quiet-halo step (bhgrow._kernels) against the same
     # independent solution as above (scipy solve_ivp, Virtanen et al. 2020); only the rows
     # selected are written
     quiet_step = _quiet_step()

@@ -1,15 +1,19 @@
 /*
- * Compiled kernels of two steps of bhgrow's engine, one halo at a time.
+ * Compiled kernels of bhgrow's engine, one halo (or node, or key) at a time.
  *
  * advance_halos: the coupled gas-hole solver of bhgrow/physics/coupled.py (its array code,
  *   ``_advance``, is the reference): piecewise closed-form Eddington and Bondi phases, the
  *   switch roots by safeguarded Newton iteration (Press et al. 2007, sect. 9.4), the
  *   a-posteriori Bondi step control. Same formulas, same order of operations, same constants
- *   (passed in by bhgrow/physics/_kernels.py from coupled.py).
+ *   (passed in by bhgrow/_kernels.py from coupled.py).
  * quiet_step: the reservoir step of halos without a black hole,
  *   StarFormation._evolve of bhgrow/physics/gas.py without the metal-flow integrals
  *   (instantaneous recycling, Tinsley 1980; mass loading, Cole et al. 2000; phi-functions,
  *   Hochbruck & Ostermann 2010), with the series coefficients passed in from gas.py.
+ * smooth_growth: the engine's smooth accretion of each snapshot's main progenitors
+ *   (bhgrow/engine.py, step 1), summed in numpy's order.
+ * stream_keys, uniform: bhgrow/rng.py's counter-based draws (SplitMix64, Steele, Lea &
+ *   Flood 2014), bit for bit.
  *
  * Why compiled: the solver's work is per halo and sequential (phases, substeps and root
  * iterations whose number differs from halo to halo); as arrays it ran ~17 passes per
@@ -26,6 +30,7 @@
 #define PY_SSIZE_T_CLEAN
 #include <Python.h>
 #include <math.h>
+#include <stdint.h>
 
 typedef struct {
     double tol;      /* _EDD_TOL */
@@ -515,25 +520,147 @@ done:
     return ret;
 }
 
+/* smooth_growth(start, stop, desc, main_prog, mass, prog_offsets, prog_index, out): for the
+ * nodes [start, stop) that are their descendant's main progenitor, the descendant's mass
+ * beyond the sum of its progenitors' (summed in the progenitor list's order, as numpy's
+ * bincount does), at least 0; out[i - start], left alone elsewhere (the engine's step 1,
+ * smooth accretion credited to the main progenitor). */
+static PyObject *smooth_growth(PyObject *self, PyObject *args) {
+    Py_ssize_t start, stop;
+    Py_buffer desc_b, main_b, mass_b, off_b, idx_b, out_b;
+    if (!PyArg_ParseTuple(args, "nny*y*y*y*y*w*:smooth_growth", &start, &stop, &desc_b,
+                          &main_b, &mass_b, &off_b, &idx_b, &out_b))
+        return NULL;
+    Py_buffer *all[6] = {&desc_b, &main_b, &mass_b, &off_b, &idx_b, &out_b};
+    PyObject *ret = NULL;
+    Py_ssize_t n = desc_b.len / 8, n_idx = idx_b.len / 8;
+    if (!check_len(&main_b, n * 8, "main_prog") || !check_len(&mass_b, n * 8, "mass")
+        || !check_len(&off_b, (n + 1) * 8, "prog_offsets")
+        || !check_len(&out_b, (stop - start) * 8, "out"))
+        goto done;
+    if (start < 0 || stop > n || start > stop) {
+        PyErr_SetString(PyExc_ValueError, "smooth_growth: rows out of range");
+        goto done;
+    }
+    {
+        const int64_t *desc = desc_b.buf, *main_prog = main_b.buf, *off = off_b.buf;
+        const int64_t *pidx = idx_b.buf;
+        const double *mass = mass_b.buf;
+        double *out = out_b.buf;
+        int bad = 0;
+        Py_BEGIN_ALLOW_THREADS
+        for (Py_ssize_t i = start; i < stop; i++) {
+            int64_t d = desc[i];
+            if (d < 0) continue;
+            if (d >= n || main_prog[d] != i) { bad |= d >= n; continue; }
+            int64_t a = off[d], b = off[d + 1];
+            if (a < 0 || b > n_idx || a > b) { bad = 1; continue; }
+            double sum = 0.0;
+            for (int64_t j = a; j < b; j++) {
+                int64_t p = pidx[j];
+                if (p < 0 || p >= n) { bad = 1; break; }
+                sum += mass[p];
+            }
+            out[i - start] = vmax(mass[d] - sum, 0.0);
+        }
+        Py_END_ALLOW_THREADS
+        if (bad) {
+            PyErr_SetString(PyExc_ValueError, "smooth_growth: a descendant or progenitor "
+                            "index lies outside the forest");
+            goto done;
+        }
+    }
+    Py_INCREF(Py_None);
+    ret = Py_None;
+done:
+    for (int j = 0; j < 6; j++) PyBuffer_Release(all[j]);
+    return ret;
+}
+
+/* SplitMix64 output function (Steele, Lea & Flood 2014), as bhgrow/rng.py's mix64 */
+static inline uint64_t mix64(uint64_t x) {
+    x ^= x >> 30;
+    x *= 0xBF58476D1CE4E5B9ULL;
+    x ^= x >> 27;
+    x *= 0x94D049BB133111EBULL;
+    x ^= x >> 31;
+    return x;
+}
+
+/* stream_keys(s, ids, out): mix64(mix64(id ^ s) + gamma) per id (bhgrow/rng.py's
+ * stream_keys, with s = its hash of the seed); ids int64, out uint64 */
+static PyObject *stream_keys(PyObject *self, PyObject *args) {
+    unsigned long long s_arg, gamma_arg;
+    Py_buffer ids_b, out_b;
+    if (!PyArg_ParseTuple(args, "KKy*w*:stream_keys", &s_arg, &gamma_arg, &ids_b, &out_b))
+        return NULL;
+    uint64_t s = (uint64_t)s_arg, gamma = (uint64_t)gamma_arg;
+    PyObject *ret = NULL;
+    Py_ssize_t n = ids_b.len / 8;
+    if (check_len(&out_b, n * 8, "out")) {
+        const uint64_t *ids = ids_b.buf;
+        uint64_t *out = out_b.buf;
+        Py_BEGIN_ALLOW_THREADS
+        for (Py_ssize_t i = 0; i < n; i++) out[i] = mix64(mix64(ids[i] ^ s) + gamma);
+        Py_END_ALLOW_THREADS
+        Py_INCREF(Py_None);
+        ret = Py_None;
+    }
+    PyBuffer_Release(&ids_b);
+    PyBuffer_Release(&out_b);
+    return ret;
+}
+
+/* uniform(offset, keys, out): doubles in [0, 1) from the top 53 bits of
+ * mix64(key + offset) (bhgrow/rng.py's uniform; offset its (step, purpose) counter) */
+static PyObject *uniform(PyObject *self, PyObject *args) {
+    unsigned long long offset_arg;
+    Py_buffer keys_b, out_b;
+    if (!PyArg_ParseTuple(args, "Ky*w*:uniform", &offset_arg, &keys_b, &out_b)) return NULL;
+    uint64_t offset = (uint64_t)offset_arg;
+    PyObject *ret = NULL;
+    Py_ssize_t n = keys_b.len / 8;
+    if (check_len(&out_b, n * 8, "out")) {
+        const uint64_t *keys = keys_b.buf;
+        double *out = out_b.buf;
+        Py_BEGIN_ALLOW_THREADS
+        for (Py_ssize_t i = 0; i < n; i++)
+            out[i] = (double)(mix64(keys[i] + offset) >> 11) * (1.0 / 9007199254740992.0);  /* 2^-53 */
+        Py_END_ALLOW_THREADS
+        Py_INCREF(Py_None);
+        ret = Py_None;
+    }
+    PyBuffer_Release(&keys_b);
+    PyBuffer_Release(&out_b);
+    return ret;
+}
+
 static PyMethodDef methods[] = {
     {"advance_halos", advance_halos, METH_VARARGS,
      "advance_halos(gas, metals, m_bh, inflow, loss, bondi_per_gas, edd, keep, per_unit, "
      "metal_rate, dt, steps, prior_rate, out, max_dlnm, constants): the coupled solver, one "
-     "halo at a time (see bhgrow/physics/_kernels.py)."},
+     "halo at a time (see bhgrow/_kernels.py)."},
     {"quiet_step", quiet_step, METH_VARARGS,
      "quiet_step(params, phi1, phi2, psi, inflow, t_dyn, v_c, dt, where, gas, stars, metals, "
      "blown): "
      "the reservoir step of halos without a black hole, in place (see "
-     "bhgrow/physics/_kernels.py)."},
+     "bhgrow/_kernels.py)."},
+    {"smooth_growth", smooth_growth, METH_VARARGS,
+     "smooth_growth(start, stop, desc, main_prog, mass, prog_offsets, prog_index, out): "
+     "smooth accretion of the main progenitors among rows [start, stop)."},
+    {"stream_keys", stream_keys, METH_VARARGS,
+     "stream_keys(s, gamma, ids, out): bhgrow.rng.stream_keys with the seed's hash s."},
+    {"uniform", uniform, METH_VARARGS,
+     "uniform(offset, keys, out): bhgrow.rng.uniform with the (step, purpose) offset."},
     {NULL, NULL, 0, NULL}};
 
 static struct PyModuleDef module = {PyModuleDef_HEAD_INIT, "_ckernels",
                                     "Compiled kernels of bhgrow's engine (see _kernels.py).",
                                     -1, methods};
 
-/* raise it whenever a function's arguments or results change (bhgrow/physics/_kernels.py
+/* raise it whenever a function's arguments or results change (bhgrow/_kernels.py
  * checks it, so a stale build is not used) */
-#define KERNELS_VERSION 1
+#define KERNELS_VERSION 2
 
 PyMODINIT_FUNC PyInit__ckernels(void) {
     PyObject *m = PyModule_Create(&module);

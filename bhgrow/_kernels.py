@@ -1,13 +1,16 @@
-"""The engine's compiled kernels (C extension ``bhgrow.physics._ckernels``), loaded once.
+"""The engine's compiled kernels (C extension ``bhgrow._ckernels``), loaded once.
 
-Two steps of the engine's inner loop have a compiled kernel beside their array code, which
+Steps of the engine's inner loop that have a compiled kernel beside their array code, which
 stays the reference they are tested against:
 
 * the coupled gas-hole solver, :func:`bhgrow.physics.coupled.advance` (array code:
   ``coupled._advance``);
 * the reservoir step of halos without a black hole, :meth:`StarFormation.step` (array code:
   ``StarFormation._evolve``), used by the engine when the model's star formation is
-  :class:`~bhgrow.physics.gas.StarFormation` itself.
+  :class:`~bhgrow.physics.gas.StarFormation` itself;
+* the smooth accretion of each snapshot's main progenitors (the engine's step 1) and the
+  counter-based random numbers of :mod:`bhgrow.rng` (``stream_keys``, ``uniform``): integer
+  and summation work in the array code's order, so bit for bit the same.
 
 Each kernel runs one halo at a time with the array code's formulas in the same order and the
 constants taken from the Python modules at every call, so the two agree to round-off (a
@@ -45,7 +48,7 @@ class Kernels:
         (``c``: its :class:`~bhgrow.physics.coupled.Coefficients`; ``steps``, ``prior_rate``:
         arrays; ``max_dlnm``: float, or None for no step control). Returns a ``(5, n)`` array:
         gas, metals, hole mass, gas accreted and the gas integral at the end."""
-        from . import coupled as cp
+        from .physics import coupled as cp
 
         out = np.empty((5, np.size(gas)))
         self._ext.advance_halos(
@@ -64,7 +67,7 @@ class Kernels:
         ``where`` is true, in place on ``gas``, ``stars``, ``metals`` (Msun) and ``blown``
         (the gas blown out, Msun); ``inflow`` Msun/Gyr, ``t_dyn`` Gyr, ``v_c`` km/s, ``dt``
         Gyr. All 1-d of one length; the four results float64 and C-contiguous."""
-        from . import gas as gs
+        from .physics import gas as gs
 
         for name, a in (("gas", gas), ("stars", stars), ("metals", metals), ("blown", blown)):
             if a.dtype != np.float64 or not a.flags.c_contiguous:
@@ -77,8 +80,40 @@ class Kernels:
             np.ascontiguousarray(where, dtype=np.bool_), gas, stars, metals, blown)
 
 
+    def smooth_growth(self, forest, start: int, stop: int):
+        """For the nodes ``[start, stop)`` of ``forest`` that are their descendant's main
+        progenitor, the descendant's mass beyond the sum of its progenitors' (Msun, >= 0);
+        0 elsewhere (the engine's smooth accretion, credited to the main progenitor).
+        None where the forest's index arrays are not C-contiguous int64 (the caller then
+        computes it with numpy)."""
+        arrays = (forest.desc_index, forest.main_prog, forest.prog_offsets,
+                  forest.prog_index)
+        mass = forest.mass_msun
+        if not (all(a.dtype == np.int64 and a.flags.c_contiguous for a in arrays)
+                and mass.dtype == np.float64 and mass.flags.c_contiguous):
+            return None
+        out = np.zeros(stop - start)
+        self._ext.smooth_growth(start, stop, forest.desc_index, forest.main_prog, mass,
+                                forest.prog_offsets, forest.prog_index, out)
+        return out
+
+    def stream_keys(self, seed_hash: int, gamma: int, ids: np.ndarray) -> np.ndarray:
+        """:func:`bhgrow.rng.stream_keys` of int64 ``ids`` (``seed_hash``: its hash of the
+        seed; ``gamma``: the SplitMix64 increment)."""
+        out = np.empty(ids.size, dtype=np.uint64)
+        self._ext.stream_keys(seed_hash, gamma, np.ascontiguousarray(ids), out)
+        return out
+
+    def uniform(self, offset: int, keys: np.ndarray) -> np.ndarray:
+        """:func:`bhgrow.rng.uniform` of uint64 ``keys`` (``offset``: the (step, purpose)
+        counter times the SplitMix64 increment)."""
+        out = np.empty(keys.size)
+        self._ext.uniform(offset, np.ascontiguousarray(keys), out)
+        return out
+
+
 #: the interface version this module calls (``KERNELS_VERSION`` of ``_ckernels.c``)
-_VERSION = 1
+_VERSION = 2
 
 #: the kernels once loaded; False: not tried yet; None: not available
 _KERNELS: Kernels | None | bool = False

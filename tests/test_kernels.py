@@ -1,5 +1,7 @@
-"""The compiled kernel of the coupled solver (:mod:`bhgrow.physics._kernels`, C) against the
-array code it is written from (``bhgrow.physics.coupled._advance``).
+"""The compiled kernels (:mod:`bhgrow._kernels`, C) against the array code they are
+written from: the coupled solver (``bhgrow.physics.coupled._advance``), the smooth accretion
+of the engine's step 1 and the counter-based random numbers of :mod:`bhgrow.rng` (the last
+two bit for bit).
 
 The physics checks of the solver (closed-form limits, solve_ivp; Salpeter 1964, Bondi 1952,
 Tinsley 1980) are in ``test_coupled.py`` and run on both implementations. Here the two are
@@ -21,7 +23,8 @@ import pytest
 from bhgrow.config import load_config
 from bhgrow.cosmology import Cosmology
 from bhgrow.engine import run_forest
-from bhgrow.physics import _kernels, coupled
+from bhgrow import _kernels
+from bhgrow.physics import coupled
 from conftest import require_kernels
 from bhgrow.physics.coupled import Coefficients, advance, substeps
 from bhgrow.trees.toy import toy_forest
@@ -128,7 +131,7 @@ def test_engine_run_agrees_with_the_array_code(monkeypatch):
 
 
 def test_environment_selects_the_array_code():
-    code = "from bhgrow.physics import _kernels; print(_kernels.kernels() is None)"
+    code = "from bhgrow import _kernels; print(_kernels.kernels() is None)"
     for value, expect in (("0", "True"), ("1", "False")):
         out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
                              env={**os.environ, "BHGROW_KERNELS": value}, check=True)
@@ -136,16 +139,68 @@ def test_environment_selects_the_array_code():
 
 
 def test_the_built_extension_is_the_one_the_loader_calls():
-    from bhgrow.physics import _ckernels
+    from bhgrow import _ckernels
 
     assert _ckernels.VERSION == _kernels._VERSION
 
 
 def test_a_stale_build_is_not_used(monkeypatch):
-    from bhgrow.physics import _ckernels
+    from bhgrow import _ckernels
 
     monkeypatch.setattr(_ckernels, "VERSION", _kernels._VERSION + 1)
     monkeypatch.setattr(_kernels, "_KERNELS", False)
     with pytest.warns(RuntimeWarning, match="out of date"):
         assert _kernels.kernels() is None
     monkeypatch.setattr(_kernels, "_KERNELS", False)   # loaded afresh by the next user
+
+
+def test_random_numbers_are_the_numpy_bits(monkeypatch):
+    # bhgrow.rng's counter-based draws (SplitMix64, Steele, Lea & Flood 2014) in C give the
+    # numpy code's bits exactly: the streams must not depend on whether the extension is built
+    from bhgrow import rng
+
+    ids = np.random.default_rng(8).integers(-2**62, 2**62, 10_000, dtype=np.int64)
+    ids[:3] = (0, -1, np.iinfo(np.int64).max)
+    fast_keys = rng.stream_keys(12345, ids)
+    fast_u = [rng.uniform(fast_keys, step, purpose) for step, purpose in ((0, 0), (7, 3))]
+    monkeypatch.setattr(_kernels, "_KERNELS", None)
+    keys = rng.stream_keys(12345, ids)
+    assert fast_keys.dtype == keys.dtype == np.uint64
+    assert np.array_equal(fast_keys, keys)
+    for got, (step, purpose) in zip(fast_u, ((0, 0), (7, 3))):
+        want = rng.uniform(keys, step, purpose)
+        assert np.array_equal(got, want)
+        assert got.min() >= 0.0 and got.max() < 1.0
+
+
+def test_smooth_growth_is_the_numpy_sum():
+    # the descendant's mass beyond its progenitors', credited to its main progenitor, in
+    # the bincount's order of summation (bit for bit), zero where a node is not a main
+    # progenitor or has no descendant
+    forest = toy_forest(200, seed=3, n_snap=15, box_mpc=20.0)
+    desc, mass = forest.desc_index, forest.mass_msun
+    for k in range(forest.snapshots.z.size):
+        sl = forest.snapshot_slice(k)
+        got = _kernels.kernels().smooth_growth(forest, sl.start, sl.stop)
+        want = np.zeros(sl.stop - sl.start)
+        rows = np.arange(sl.start, sl.stop)
+        has = desc[sl] >= 0
+        go, d = rows[has], desc[sl][has]
+        if d.size:
+            lo, span = int(d.min()), int(d.max() - d.min()) + 1
+            progs = forest.prog_index[forest.prog_offsets[lo]:forest.prog_offsets[lo + span]]
+            psum = np.bincount(desc[progs] - lo, weights=mass[progs], minlength=span)
+            main = forest.main_prog[d] == go
+            want[go[main] - sl.start] = np.maximum(mass[d[main]] - psum[d[main] - lo], 0.0)
+        assert np.array_equal(got, want)
+
+
+def test_smooth_growth_refuses_an_index_outside_the_forest():
+    forest = toy_forest(5, seed=3, n_snap=6, box_mpc=20.0)
+    bad = forest.prog_index.copy()
+    bad[0] = forest.n_nodes + 5
+    with pytest.raises(ValueError, match="outside the forest"):
+        _kernels.kernels()._ext.smooth_growth(0, forest.n_nodes, forest.desc_index,
+                                              forest.main_prog, forest.mass_msun,
+                                              forest.prog_offsets, bad,
+                                              np.zeros(forest.n_nodes))
