@@ -12,8 +12,8 @@
  *   Hochbruck & Ostermann 2010), with the series coefficients passed in from gas.py.
  * smooth_growth: the engine's smooth accretion of each snapshot's main progenitors
  *   (bhgrow/engine.py, step 1), summed in numpy's order.
- * stream_keys, uniform: bhgrow/rng.py's counter-based draws (SplitMix64, Steele, Lea &
- *   Flood 2014), bit for bit.
+ * splitmix: bhgrow/rng.py's counter-based draws, stream_keys and uniform (SplitMix64,
+ *   Steele, Lea & Flood 2014), bit for bit.
  *
  * Why compiled: the solver's work is per halo and sequential (phases, substeps and root
  * iterations whose number differs from halo to halo); as arrays it ran ~17 passes per
@@ -587,50 +587,37 @@ static inline uint64_t mix64(uint64_t x) {
     return x;
 }
 
-/* stream_keys(s, ids, out): mix64(mix64(id ^ s) + gamma) per id (bhgrow/rng.py's
- * stream_keys, with s = its hash of the seed); ids int64, out uint64 */
-static PyObject *stream_keys(PyObject *self, PyObject *args) {
-    unsigned long long s_arg, gamma_arg;
-    Py_buffer ids_b, out_b;
-    if (!PyArg_ParseTuple(args, "KKy*w*:stream_keys", &s_arg, &gamma_arg, &ids_b, &out_b))
+/* splitmix(what, a, b, x, out), bhgrow/rng.py's counter-based draws on 64-bit values x:
+ *   what 0, stream_keys: out = mix64(mix64(x ^ a) + b) (uint64; a the seed's hash, b gamma);
+ *   what 1, uniform: out = top 53 bits of mix64(x + a) / 2^53 (double; a the (step, purpose)
+ *   counter, b unused). */
+static PyObject *splitmix(PyObject *self, PyObject *args) {
+    int what;
+    unsigned long long a_arg, b_arg;
+    Py_buffer x_b, out_b;
+    if (!PyArg_ParseTuple(args, "iKKy*w*:splitmix", &what, &a_arg, &b_arg, &x_b, &out_b))
         return NULL;
-    uint64_t s = (uint64_t)s_arg, gamma = (uint64_t)gamma_arg;
+    uint64_t a = (uint64_t)a_arg, b = (uint64_t)b_arg;
     PyObject *ret = NULL;
-    Py_ssize_t n = ids_b.len / 8;
-    if (check_len(&out_b, n * 8, "out")) {
-        const uint64_t *ids = ids_b.buf;
-        uint64_t *out = out_b.buf;
+    Py_ssize_t n = x_b.len / 8;
+    if (what != 0 && what != 1) {
+        PyErr_SetString(PyExc_ValueError, "splitmix: `what` must be 0 or 1");
+    } else if (check_len(&out_b, n * 8, "out")) {
+        const uint64_t *x = x_b.buf;
         Py_BEGIN_ALLOW_THREADS
-        for (Py_ssize_t i = 0; i < n; i++) out[i] = mix64(mix64(ids[i] ^ s) + gamma);
+        if (what == 0) {
+            uint64_t *out = out_b.buf;
+            for (Py_ssize_t i = 0; i < n; i++) out[i] = mix64(mix64(x[i] ^ a) + b);
+        } else {
+            double *out = out_b.buf;
+            for (Py_ssize_t i = 0; i < n; i++)     /* times 2^-53, exactly */
+                out[i] = (double)(mix64(x[i] + a) >> 11) * (1.0 / 9007199254740992.0);
+        }
         Py_END_ALLOW_THREADS
         Py_INCREF(Py_None);
         ret = Py_None;
     }
-    PyBuffer_Release(&ids_b);
-    PyBuffer_Release(&out_b);
-    return ret;
-}
-
-/* uniform(offset, keys, out): doubles in [0, 1) from the top 53 bits of
- * mix64(key + offset) (bhgrow/rng.py's uniform; offset its (step, purpose) counter) */
-static PyObject *uniform(PyObject *self, PyObject *args) {
-    unsigned long long offset_arg;
-    Py_buffer keys_b, out_b;
-    if (!PyArg_ParseTuple(args, "Ky*w*:uniform", &offset_arg, &keys_b, &out_b)) return NULL;
-    uint64_t offset = (uint64_t)offset_arg;
-    PyObject *ret = NULL;
-    Py_ssize_t n = keys_b.len / 8;
-    if (check_len(&out_b, n * 8, "out")) {
-        const uint64_t *keys = keys_b.buf;
-        double *out = out_b.buf;
-        Py_BEGIN_ALLOW_THREADS
-        for (Py_ssize_t i = 0; i < n; i++)
-            out[i] = (double)(mix64(keys[i] + offset) >> 11) * (1.0 / 9007199254740992.0);  /* 2^-53 */
-        Py_END_ALLOW_THREADS
-        Py_INCREF(Py_None);
-        ret = Py_None;
-    }
-    PyBuffer_Release(&keys_b);
+    PyBuffer_Release(&x_b);
     PyBuffer_Release(&out_b);
     return ret;
 }
@@ -648,10 +635,8 @@ static PyMethodDef methods[] = {
     {"smooth_growth", smooth_growth, METH_VARARGS,
      "smooth_growth(start, stop, desc, main_prog, mass, prog_offsets, prog_index, out): "
      "smooth accretion of the main progenitors among rows [start, stop)."},
-    {"stream_keys", stream_keys, METH_VARARGS,
-     "stream_keys(s, gamma, ids, out): bhgrow.rng.stream_keys with the seed's hash s."},
-    {"uniform", uniform, METH_VARARGS,
-     "uniform(offset, keys, out): bhgrow.rng.uniform with the (step, purpose) offset."},
+    {"splitmix", splitmix, METH_VARARGS,
+     "splitmix(what, a, b, x, out): bhgrow.rng's stream_keys (what 0) or uniform (what 1)."},
     {NULL, NULL, 0, NULL}};
 
 static struct PyModuleDef module = {PyModuleDef_HEAD_INIT, "_ckernels",
@@ -660,7 +645,7 @@ static struct PyModuleDef module = {PyModuleDef_HEAD_INIT, "_ckernels",
 
 /* raise it whenever a function's arguments or results change (bhgrow/_kernels.py
  * checks it, so a stale build is not used) */
-#define KERNELS_VERSION 2
+#define KERNELS_VERSION 3
 
 PyMODINIT_FUNC PyInit__ckernels(void) {
     PyObject *m = PyModule_Create(&module);

@@ -101,19 +101,19 @@ class Kernels:
         """:func:`bhgrow.rng.stream_keys` of int64 ``ids`` (``seed_hash``: its hash of the
         seed; ``gamma``: the SplitMix64 increment)."""
         out = np.empty(ids.size, dtype=np.uint64)
-        self._ext.stream_keys(seed_hash, gamma, np.ascontiguousarray(ids), out)
+        self._ext.splitmix(0, seed_hash, gamma, np.ascontiguousarray(ids), out)
         return out
 
     def uniform(self, offset: int, keys: np.ndarray) -> np.ndarray:
         """:func:`bhgrow.rng.uniform` of uint64 ``keys`` (``offset``: the (step, purpose)
         counter times the SplitMix64 increment)."""
         out = np.empty(keys.size)
-        self._ext.uniform(offset, np.ascontiguousarray(keys), out)
+        self._ext.splitmix(1, offset, 0, np.ascontiguousarray(keys), out)
         return out
 
 
 #: the interface version this module calls (``KERNELS_VERSION`` of ``_ckernels.c``)
-_VERSION = 2
+_VERSION = 3
 
 #: the kernels once loaded; False: not tried yet; None: not available
 _KERNELS: Kernels | None | bool = False
