@@ -79,7 +79,6 @@ class Kernels:
             _f64(inflow), _f64(t_dyn), _f64(v_c), _f64(dt),
             np.ascontiguousarray(where, dtype=np.bool_), gas, stars, metals, blown)
 
-
     def smooth_growth(self, forest, start: int, stop: int):
         """For the nodes ``[start, stop)`` of ``forest`` that are their descendant's main
         progenitor, the descendant's mass beyond the sum of its progenitors' (Msun, >= 0);

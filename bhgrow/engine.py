@@ -365,22 +365,20 @@ def _snapshot(w: _Walk, k: int) -> None:
     d0 = np.where(has_desc, d_sl, rows)
     dts = (t_by_num[forest.snap[d0]] if t_by_num is not None else
            t_snap[np.searchsorted(offsets, d0, side="right") - 1]) - t_snap[k]
-    smooth = None
+    smooth = np.zeros(rows.size)
     if d.size:
         lo = int(d.min())
         span = int(d.max()) - lo + 1
         compiled = _kernels.kernels()
-        if compiled is not None:        # the same sums in the same order, in C
-            smooth = compiled.smooth_growth(forest, sl.start, sl.stop)
-        if smooth is None:
-            smooth = np.zeros(rows.size)
+        fast = None if compiled is None else compiled.smooth_growth(forest, sl.start, sl.stop)
+        if fast is not None:            # the same sums in the same order, in C
+            smooth = fast
+        else:
             progs = prog_index[prog_offsets[lo]:prog_offsets[lo + span]]
             prog_sum = np.bincount(desc[progs] - lo, weights=mass_h[progs], minlength=span)
             mains = np.flatnonzero(main_prog[d] == go)
             dm = d[mains]
             smooth[go[mains] - sl.start] = np.maximum(mass_h[dm] - prog_sum[dm - lo], 0.0)
-    else:
-        smooth = np.zeros(rows.size)
     np.copyto(gas_sl, fb_eff * m, where=new)
 
     # --- coalescences due by now --------------------------------------------------------
