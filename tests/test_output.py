@@ -238,7 +238,8 @@ def write_reference(cols: dict, path) -> None:
         h5.attrs["format"] = "bhgrow-histories"
         h5.attrs["schema_version"] = 1
         for name, arr in cols.items():
-            ds = h5.create_dataset(name, data=arr, compression="gzip", shuffle=True)
+            ds = h5.create_dataset(name, data=arr, compression="gzip", shuffle=True,
+                                   compression_opts=output.HISTORIES_GZIP_LEVEL)
             ds.attrs["unit"] = units.get(name, "")
         uniq, start = np.unique(cols["bh_id"], return_index=True)
         g = h5.create_group("index")
@@ -278,20 +279,35 @@ def hdf5_deflate_is_pythons(tmp_path) -> bool:
     data = np.arange(5000, dtype=np.float64) ** 1.5
     with h5py.File(tmp_path / "probe.h5", "w") as h5:
         ds = h5.create_dataset("x", data=data, chunks=(5000,), compression="gzip",
-                               shuffle=True)
+                               shuffle=True, compression_opts=output.HISTORIES_GZIP_LEVEL)
         raw = ds.id.read_direct_chunk((0,))[1]
-    return raw == zlib.compress(data.view(np.uint8).reshape(-1, 8).T.tobytes(), 4)
+    return raw == zlib.compress(data.view(np.uint8).reshape(-1, 8).T.tobytes(),
+                                output.HISTORIES_GZIP_LEVEL)
+
+
+def same_raw_chunks(tmp_path) -> bool:
+    """Whether bhgrow's stored chunks should be HDF5's own bytes: both deflate with zlib."""
+    return output._deflater() is zlib.compress and hdf5_deflate_is_pythons(tmp_path)
+
+
+@pytest.fixture(params=["installed", "zlib"])
+def deflater(request, monkeypatch):
+    """The deflater bhgrow finds (ISA-L's where the isal package imports) and Python's zlib
+    (what it falls back to)."""
+    if request.param == "zlib":
+        monkeypatch.setattr(output, "_deflater", lambda: zlib.compress)
+    return request.param
 
 
 @pytest.mark.parametrize("threads", [1, 2, 5])   # 16 chunks a column; 5: window never full
-def test_histories_same_datasets_as_hdf5_writes(tmp_path, threads):
+def test_histories_same_datasets_as_hdf5_writes(tmp_path, threads, deflater):
     cols = history_columns()
     write_reference(cols, tmp_path / "ref.h5")
     with h5py.File(tmp_path / "ref.h5") as h5:      # a partial last chunk (padded)
         assert h5["mass_msun"].shape[0] % h5["mass_msun"].chunks[0] != 0
     write_histories(cols, tmp_path / "new.h5", threads=threads)
     assert_same_histories(tmp_path / "ref.h5", tmp_path / "new.h5",
-                          raw_chunks=hdf5_deflate_is_pythons(tmp_path))
+                          raw_chunks=same_raw_chunks(tmp_path))
     back = read_histories(tmp_path / "new.h5")
     for k, v in cols.items():
         np.testing.assert_array_equal(back[k], v, k)
@@ -308,13 +324,34 @@ def test_histories_default_threads_and_empty(tmp_path):
     assert_same_histories(tmp_path / "ref0.h5", tmp_path / "new0.h5", raw_chunks=False)
 
 
+def test_histories_chunks_are_zlib_streams_of_the_shuffled_rows(tmp_path, deflater):
+    """Each stored chunk, inflated by Python's zlib (RFC 1950 reference implementation), is
+    HDF5's shuffle of the chunk's rows, padded with the fill value 0 (the layout HDF5's
+    filters define), whichever deflater wrote it."""
+    cols = history_columns()
+    write_histories(cols, tmp_path / "h.h5", threads=2)
+    with h5py.File(tmp_path / "h.h5") as h5:
+        for name in ("t_gyr", "mass_msun", "bh_id", "eddington_ratio"):
+            ds, arr = h5[name], cols[name]
+            size, item = ds.chunks[0], arr.dtype.itemsize
+            assert ds.compression == "gzip" and ds.shuffle, name
+            assert ds.compression_opts == output.HISTORIES_GZIP_LEVEL, name
+            for i in range(ds.id.get_num_chunks()):
+                start = ds.id.get_chunk_info(i).chunk_offset[0]
+                part = np.zeros(size, arr.dtype)
+                rows = arr[start:start + size]
+                part[:rows.size] = rows
+                want = part.view(np.uint8).reshape(size, item).T.tobytes()
+                assert zlib.decompress(ds.id.read_direct_chunk((start,))[1]) == want, (name, i)
+
+
 def test_histories_compression_error_leaves_no_thread_running(tmp_path, monkeypatch):
     import threading
 
     def broken(data, level):
         raise RuntimeError("disk on fire")
 
-    monkeypatch.setattr(zlib, "compress", broken)
+    monkeypatch.setattr(output, "_deflater", lambda: broken)
     before = threading.active_count()
     with pytest.raises(RuntimeError, match="disk on fire"):
         write_histories(history_columns(50), tmp_path / "h.h5", threads=2)
@@ -390,8 +427,7 @@ def test_history_store_gives_the_columns_and_file_of_one_write(tmp_path, monkeyp
         np.testing.assert_array_equal(got, v, k)
     write_histories(cols, tmp_path / "memory.h5", threads=2)
     write_histories(store, tmp_path / "store.h5", threads=2)
-    assert_same_histories(tmp_path / "memory.h5", tmp_path / "store.h5",
-                          raw_chunks=hdf5_deflate_is_pythons(tmp_path))
+    assert_same_histories(tmp_path / "memory.h5", tmp_path / "store.h5", raw_chunks=True)
     with h5py.File(tmp_path / "store.h5") as h5:
         assert h5["mass_msun"].shape[0] > 3 * h5["mass_msun"].chunks[0]   # several chunks
 
