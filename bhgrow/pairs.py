@@ -113,6 +113,10 @@ def coalesce(bh, sl, t_now, k, gas, stars, v_esc, mass_h, forest, model, run, co
         return events
     order, rank = rank_within(bh.host[due], bh.t_c[due])
     due, rank = due[order], rank
+    # the spin draws and redshifts of every due coalescence at once: each depends on its own
+    # hole alone, and a hole's t_c does not change before its rank is applied
+    u_due = spin_uniforms(run.seed, bh.bh_id[due], k)
+    z_due = cosmo_z(cosmo, bh.t_c[due])
     central_of = np.full(sl.stop - sl.start, -1, dtype=np.int64)
     cen = np.flatnonzero(live & (bh.status == CENTRAL))
     central_of[bh.host[cen] - sl.start] = cen
@@ -129,10 +133,11 @@ def coalesce(bh, sl, t_now, k, gas, stars, v_esc, mass_h, forest, model, run, co
     ev_host = np.full(sl.stop - sl.start, -1, dtype=np.int64)
     z_now = None
     for r in range(int(rank.max()) + 1):
-        ev = due[rank == r]
-        ev = ev[bh.status[ev] == SINKING]            # a triple may have removed some
-        if ev.size == 0:
+        at = np.flatnonzero(rank == r)                # positions in due
+        at = at[bh.status[due[at]] == SINKING]        # a triple may have removed some
+        if at.size == 0:
             continue
+        ev = due[at]
         loc = bh.host[ev] - sl.start
         c = central_of[loc]
         # no central: the sinking black hole settles as the central
@@ -140,7 +145,7 @@ def coalesce(bh, sl, t_now, k, gas, stars, v_esc, mass_h, forest, model, run, co
         if none.any():
             bh.status[ev[none]] = CENTRAL
             central_of[loc[none]] = ev[none]
-        ev, loc, c = ev[~none], loc[~none], c[~none]
+        ev, loc, c, at = ev[~none], loc[~none], c[~none], at[~none]
         if ev.size == 0:
             continue
         # triples: another sinking black hole reached the nucleus before this pair merged
@@ -174,11 +179,11 @@ def coalesce(bh, sl, t_now, k, gas, stars, v_esc, mass_h, forest, model, run, co
             bh.status[ev[e_of[lost_c]]] = CENTRAL
             central_of[il[lost_c]] = ev[e_of[lost_c]]
             keep[e_of[(lightest == 0) | (lightest == 1)]] = False
-        ev, loc, c = ev[keep], loc[keep], c[keep]
+        ev, loc, c, at = ev[keep], loc[keep], c[keep], at[keep]
         if ev.size == 0:
             continue
-        ev_rec = _merge_pairs(bh, ev, c, loc, sl, k, gas, stars, v_esc, mass_h, forest, model,
-                              run, cosmo, codes)
+        ev_rec = _merge_pairs(bh, ev, c, loc, sl, gas, stars, v_esc, mass_h, model,
+                              u_due[at], z_due[at])
         prim = ev_rec.pop("_primary")
         central_of[loc] = np.where(ev_rec["ejected"], -1, prim)
         events.append(ev_rec)
@@ -191,9 +196,11 @@ def cosmo_z(cosmo, t_gyr):
     return cosmo.z_at_age(t)
 
 
-def _merge_pairs(bh, ev, c, loc, sl, k, gas, stars, v_esc, mass_h, forest, model, run, cosmo,
-                 codes):
-    """Coalesce sinking ``ev`` with centrals ``c`` (vectorized); return the event record."""
+def _merge_pairs(bh, ev, c, loc, sl, gas, stars, v_esc, mass_h, model, u, z_c):
+    """Coalesce sinking ``ev`` with centrals ``c`` (vectorized); return the event record.
+
+    ``u``: the events' spin uniforms (:func:`spin_uniforms`); ``z_c``: the redshifts of
+    their coalescence times ``bh.t_c[ev]``."""
     from .engine import CENTRAL, EJECTED, MERGED
     from .physics.remnants import chirp_mass
 
@@ -204,12 +211,10 @@ def _merge_pairs(bh, ev, c, loc, sl, k, gas, stars, v_esc, mass_h, forest, model
     rows = sl.start + loc
     g, s = gas[loc], stars[loc]                 # of the slice
     gas_frac = np.divide(g, g + s, out=np.zeros(g.size), where=(g + s) > 0)
-    u = spin_uniforms(run.seed, bh.bh_id[ev], k)
     chi1, chi2 = model.spin_draw.draw(np.abs(bh.spin[primary]), np.abs(bh.spin[secondary]),
                                       gas_frac, u)
     rem = model.remnant.remnant(m1, m2, chi1, chi2, u)
     t_c = bh.t_c[ev]
-    z_c = cosmo_z(cosmo, t_c)
     kick = np.asarray(rem.kick_kms, dtype=float)
     ejected = kick > v_esc[loc]
     radiated = np.asarray(rem.radiated_msun, dtype=float)

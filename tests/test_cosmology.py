@@ -379,3 +379,21 @@ def test_pickle_round_trip(planck):
     z = np.array([0.0, 1.0, 29.0])
     np.testing.assert_array_equal(other.lum_dist_mpc(z), planck.lum_dist_mpc(z))
     assert other.to_dict() == planck.to_dict()
+
+
+def test_scalar_redshift_memo_gives_the_array_values(planck):
+    """The last scalar redshift's ln E is kept; alternating scalars (including -0.0 and 0.0,
+    whose ln(1+z) differ in sign) give the array path's values bit for bit, and those agree
+    with astropy's Om(z) and critical density (Planck18, astropy's own realization)."""
+    zs = [3.0, 3.0, 0.0, -0.0, 0.0, 7.25, np.float64(7.25), np.asarray(3.0), 1e-300]
+    for z in zs:
+        for method in ("omega_m", "rho_crit_msun_kpc3", "efunc", "hubble_kms_mpc"):
+            got = getattr(planck, method)(z)
+            want = getattr(planck, method)(np.array([float(z)]))[0]
+            assert isinstance(got, float)
+            assert np.float64(got).tobytes() == np.float64(want).tobytes(), (method, z)
+        np.testing.assert_allclose(planck.omega_m(z), Planck18.Om(float(z)), rtol=1e-6)
+    again = pickle.loads(pickle.dumps(planck))
+    assert again.omega_m(7.25) == planck.omega_m(7.25)
+    crit = Planck18.critical_density(2.0).to_value(u.Msun / u.kpc**3)
+    assert planck.rho_crit_msun_kpc3(2.0) == pytest.approx(crit, rel=1e-6)
