@@ -713,17 +713,28 @@ def run(config=None, *, trees=None, out=None, overwrite: bool = False,
             scratch = tempfile.mkdtemp(prefix=f".{Checkpoint.directory_for(out).name}-ids-"
                                        f"{os.getpid()}-", dir=near) if near else None
 
+            n_check = config.run.workers if workers is None else workers
+            from .parallel import default_start_method, n_local_workers
+
+            # figures drawn by a process forked later (several local workers): matplotlib
+            # imported here once, beside the check, not on the writing's longest task
+            preload = (out is not None and n_local_workers(n_check) > 1
+                       and default_start_method() == "fork")
+
             def meanwhile():
                 Cosmology.from_name(config.run.cosmology)
                 # the file's SHA-256 (provenance, checkpoint), kept by the forest: read
                 # here, not serially before the chunks (0.2 s for a 2e7-node file)
                 lazy.sha256()
+                if preload:
+                    from .plots import preload as import_matplotlib
+
+                    import_matplotlib()
 
             try:
                 lazy = open_forests(path, check=False)
-                forest = lazy.check(
-                    config.run.chunk_nodes, config.run.workers if workers is None else workers,
-                    meanwhile=meanwhile, scratch_dir=scratch)
+                forest = lazy.check(config.run.chunk_nodes, n_check, meanwhile=meanwhile,
+                                    scratch_dir=scratch)
             finally:
                 if scratch is not None:
                     shutil.rmtree(scratch, ignore_errors=True)

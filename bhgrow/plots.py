@@ -29,6 +29,12 @@ def _plt():
     return plt
 
 
+def preload() -> None:
+    """Import matplotlib (Agg) with bhgrow's settings now (~0.4 s): in a process that will
+    fork the ones drawing figures, which then inherit it instead of importing it each."""
+    _plt()
+
+
 def _subplots():
     """A fresh figure and axes, made at the saving resolution :data:`DPI`.
 
@@ -41,6 +47,11 @@ def _subplots():
 
 #: (renderer class, its mathtext parser) shared by the figures of this process
 _MATHTEXT: list = []
+if hasattr(os, "register_at_fork"):
+    # a parser holds FreeType fonts, whose open files a forked process would share with
+    # this one (their read offsets too: drawing in both at once garbles glyphs, "too many
+    # hints"); matplotlib empties its own font cache in a forked child for the same reason
+    os.register_at_fork(after_in_child=_MATHTEXT.clear)
 
 
 def _shared_mathtext(fig) -> None:

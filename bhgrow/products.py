@@ -146,21 +146,12 @@ def _summary_md(s: dict, name: str) -> str:
 
 
 def make_figures(tables: dict, mergers, histories, black_holes, gws: dict, settings,
-                 fig_dir: Path) -> list:
-    """Every figure of a run (PNG)."""
+                 fig_dir: Path, *, table_free: bool = True) -> list:
+    """Every figure of a run (PNG); with ``table_free=False`` only those drawn from the
+    tables (:func:`table_free_figures` draws the others)."""
     fig_dir.mkdir(exist_ok=True)
-    out = []
-    if isinstance(histories, OnDiskHistories):
-        # on disk: read back only the rows of the black holes the figure shows
-        histories = histories.most_massive(plots.N_HISTORIES)
-    if histories is not None and len(histories.get("bh_id", [])):
-        # the channels of the black holes in these histories only (not a dict of all)
-        ids = np.asarray(black_holes["bh_id"])
-        shown = np.isin(ids, np.unique(np.asarray(histories["bh_id"])))
-        chans = dict(zip(ids[shown].tolist(),
-                         np.asarray(black_holes["seed_channel"])[shown].tolist()))
-        out.append(plots.mass_histories(histories, fig_dir / "mass_histories.png",
-                                        n=plots.N_HISTORIES, seed_channels=chans))
+    out = table_free_figures(histories, black_holes, mergers, settings, fig_dir) \
+        if table_free else []
     # merger rate vs z per seed channel of the pair (both the same channel, or "mixed")
     t = tables["observed_merger_rate"]
     rates = {"all": (np.asarray(t["rate_density_mpc3_gyr"]),
@@ -209,6 +200,30 @@ def make_figures(tables: dict, mergers, histories, black_holes, gws: dict, setti
     x = 0.5 * (np.asarray(r["log_mhalo_lo"]) + np.asarray(r["log_mhalo_hi"]))
     out.append(plots.mbh_mhalo(x, r["median_log_mbh"], r["p16_log_mbh"], r["p84_log_mbh"],
                                fig_dir / "mbh_mhalo.png"))
+    if gws.get("background") is not None:
+        bg = gws["background"]
+        out.append(plots.gw_background(np.asarray(bg["f_hz"]), np.asarray(bg["h_c"]),
+                                       fig_dir / "gw_background.png"))
+    return out
+
+
+def table_free_figures(histories, black_holes, mergers, settings, fig_dir: Path) -> list:
+    """The figures drawn from the catalogues alone, not from the tables: the mass histories
+    of the most massive black holes (none without ``histories``) and the LISA SNRs of the
+    mergers. Their paths."""
+    fig_dir.mkdir(exist_ok=True)
+    out = []
+    if isinstance(histories, OnDiskHistories):
+        # on disk: read back only the rows of the black holes the figure shows
+        histories = histories.most_massive(plots.N_HISTORIES)
+    if histories is not None and len(histories.get("bh_id", [])):
+        # the channels of the black holes in these histories only (not a dict of all)
+        ids = np.asarray(black_holes["bh_id"])
+        shown = np.isin(ids, np.unique(np.asarray(histories["bh_id"])))
+        chans = dict(zip(ids[shown].tolist(),
+                         np.asarray(black_holes["seed_channel"])[shown].tolist()))
+        out.append(plots.mass_histories(histories, fig_dir / "mass_histories.png",
+                                        n=plots.N_HISTORIES, seed_channels=chans))
     if len(mergers):
         snr = np.asarray(mergers["lisa_snr"], dtype=float)
         lo = np.arange(-3, 6.5, 0.25)
@@ -219,10 +234,6 @@ def make_figures(tables: dict, mergers, histories, black_holes, gws: dict, setti
                                    vline=float(np.log10(settings.snr_threshold)),
                                    vlabel=f"threshold SNR = {settings.snr_threshold:g}",
                                    title=f"LISA SNR ({settings.mission_yr:g}-yr mission)"))
-    if gws.get("background") is not None:
-        bg = gws["background"]
-        out.append(plots.gw_background(np.asarray(bg["f_hz"]), np.asarray(bg["h_c"]),
-                                       fig_dir / "gw_background.png"))
     return out
 
 
@@ -241,10 +252,13 @@ def make_products(result, config, cosmo, run_dir: Path, *, name: str | None = No
     ``also``: other tasks writing files of the run directory (functions of no argument,
     largest first), run with these. With ``workers`` > 1 where workers are forked (Linux),
     the tasks are shared by that many local workers (:func:`bhgrow.parallel.run_tasks`):
-    the products' own task (tables, summary, then the figures: ~1 s + ~2.5 s with
-    matplotlib's import at 2e7 nodes, the largest) goes first to a forked process, the other
-    tasks to whichever worker is free; the files are the same either way. (Until 2026-12-03
-    the tables were built here before the tasks, while the other worker waited.)
+    the products' own task (tables, summary, then the figures drawn from them: ~1 s + ~1.5
+    s at 2e7 nodes, the largest) goes first to a forked process, the figures drawn from the
+    catalogues alone (:func:`table_free_figures`, ~0.5 s) second, the other tasks to
+    whichever worker is free; the files are the same either way. (Until 2026-12-03 the
+    tables were built here before the tasks, while the other worker waited; until the
+    fourteenth session every figure was in the products' task, the longest at 8e6 nodes,
+    while the other worker had finished its parts.)
     """
     from .output import write_ecsv, write_json
     from .parallel import run_tasks
@@ -271,10 +285,18 @@ def make_products(result, config, cosmo, run_dir: Path, *, name: str | None = No
         write_json(summary, run_dir / "summary.json")
         (run_dir / "summary.md").write_text(_summary_md(summary, name or run_dir.name))
         make_figures(tables, result.mergers, hist, result.black_holes, gws, settings,
-                     run_dir / "figures")
+                     run_dir / "figures", table_free=not split)
         return summary
 
-    return run_tasks([products, *also], workers, what="writing the run directory")[0]
+    # with several workers the figures that need no table are a task of their own
+    split = workers > 1
+
+    def other_figures():
+        table_free_figures(hist, result.black_holes, result.mergers, settings,
+                           run_dir / "figures")
+
+    tasks = [products, *([other_figures] if split else []), *also]
+    return run_tasks(tasks, workers, what="writing the run directory")[0]
 
 
 def products_from_run(run_dir, config=None) -> dict:

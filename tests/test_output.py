@@ -9,6 +9,7 @@ References are the libraries' own writers: astropy's ECSV writer
 
 from __future__ import annotations
 
+import os
 import zlib
 
 import h5py
@@ -523,3 +524,33 @@ def test_history_file_bad_input(tmp_path):
         h5["z"] = np.zeros(3)
     with pytest.raises(BhgrowInputError, match="datasets differ in length"):
         output.HistoryFile(tmp_path / "h.h5")
+
+
+@pytest.mark.skipif(not hasattr(os, "fork"), reason="fork")
+def test_figures_drawn_here_and_in_a_forked_process_at_once(tmp_path):
+    """A process that has drawn figures forks one that draws at the same time (as the
+    writing tasks of a run with several workers do): both finish, with the same pixels as a
+    figure drawn alone. Each process needs its own FreeType fonts (their open files' read
+    offsets are shared across a fork); with the shared mathtext parser inherited, this
+    failed with FreeType's "too many hints"."""
+    lo = np.arange(-3, 6.5, 0.25)
+    counts = {"mergers": np.arange(lo.size) % 7}
+    labels = dict(xlabel=r"log$_{10}$ sky-averaged LISA SNR", ylabel="mergers",
+                  title=r"$\mathdefault{10^{-4}}$ to $M_\odot$")
+    plots.histogram(lo, lo + 0.25, counts, tmp_path / "alone.png", **labels)
+    pid = os.fork()
+    if pid == 0:                                   # the child: its figures, then its verdict
+        code = 1
+        try:
+            for i in range(6):
+                plots.histogram(lo, lo + 0.25, counts, tmp_path / f"child{i}.png", **labels)
+            code = 0
+        finally:
+            os._exit(code)
+    for i in range(6):
+        plots.histogram(lo, lo + 0.25, counts, tmp_path / f"here{i}.png", **labels)
+    assert os.waitpid(pid, 0)[1] == 0
+    want = png_pixels(tmp_path / "alone.png")
+    for i in range(6):
+        for who in ("child", "here"):
+            np.testing.assert_array_equal(png_pixels(tmp_path / f"{who}{i}.png"), want)
