@@ -526,6 +526,8 @@ class Cosmology:
             if last is not None and last[0] == key:
                 return last[1], last[2], True
             out = self._ln_efunc_arrays(z)
+            for arr in out[:2]:
+                arr.setflags(write=False)       # handed out again: an in-place change fails
             self._ln_e_last = (key, out[0], out[1])
             return out
         return self._ln_efunc_arrays(z)

@@ -332,7 +332,7 @@ def test_histories_chunks_are_zlib_streams_of_the_shuffled_rows(tmp_path, deflat
     cols = history_columns()
     write_histories(cols, tmp_path / "h.h5", threads=2)
     with h5py.File(tmp_path / "h.h5") as h5:
-        for name in ("t_gyr", "mass_msun", "bh_id", "eddington_ratio"):
+        for name in output.HISTORY_COLUMNS:
             ds, arr = h5[name], cols[name]
             size, item = ds.chunks[0], arr.dtype.itemsize
             assert ds.compression == "gzip" and ds.shuffle, name
@@ -344,6 +344,13 @@ def test_histories_chunks_are_zlib_streams_of_the_shuffled_rows(tmp_path, deflat
                 part[:rows.size] = rows
                 want = part.view(np.uint8).reshape(size, item).T.tobytes()
                 assert zlib.decompress(ds.id.read_direct_chunk((start,))[1]) == want, (name, i)
+
+
+def test_deflater_falls_back_to_zlib_without_isal(monkeypatch):
+    import sys
+
+    monkeypatch.setitem(sys.modules, "isal", None)       # import isal -> ImportError
+    assert output._deflater() is zlib.compress
 
 
 def test_histories_compression_error_leaves_no_thread_running(tmp_path, monkeypatch):
@@ -545,11 +552,26 @@ def test_figures_drawn_here_and_in_a_forked_process_at_once(tmp_path):
             for i in range(6):
                 plots.histogram(lo, lo + 0.25, counts, tmp_path / f"child{i}.png", **labels)
             code = 0
+        except BaseException:
+            import traceback
+
+            traceback.print_exc()                 # shown by pytest (captured stderr)
         finally:
             os._exit(code)
-    for i in range(6):
-        plots.histogram(lo, lo + 0.25, counts, tmp_path / f"here{i}.png", **labels)
-    assert os.waitpid(pid, 0)[1] == 0
+    import signal
+    import time
+
+    try:
+        for i in range(6):
+            plots.histogram(lo, lo + 0.25, counts, tmp_path / f"here{i}.png", **labels)
+    finally:
+        deadline = time.monotonic() + 60
+        while (done := os.waitpid(pid, os.WNOHANG))[0] == 0 and time.monotonic() < deadline:
+            time.sleep(0.05)
+        if done[0] == 0:                           # hung: stop it, then fail
+            os.kill(pid, signal.SIGKILL)
+            os.waitpid(pid, 0)
+    assert done[0] == pid and done[1] == 0, "the forked process failed or hung"
     want = png_pixels(tmp_path / "alone.png")
     for i in range(6):
         for who in ("child", "here"):
