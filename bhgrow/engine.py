@@ -384,7 +384,7 @@ def _snapshot(w: _Walk, k: int) -> None:
     # --- coalescences due by now --------------------------------------------------------
     if len(bh):
         w.events += pairs.coalesce(bh, sl, float(t_snap[k]), k, gas_sl, stars_sl, v_esc,
-                                   mass_h, forest, model, run, cosmo, sd.CHANNEL_CODES)
+                                   mass_h, model, run, cosmo)
 
     # --- black holes hosted in this slice ----------------------------------------------
     in_slice = (bh.host >= sl.start) & (bh.host < sl.stop) if len(bh) else np.zeros(0, bool)

@@ -95,7 +95,7 @@ def start_clocks(bh, idx, new_host, old_host, t_merge, model, run, cosmo, mass_h
     bh.t_c[idx] = t_merge + np.asarray(parts.total, dtype=float)
 
 
-def coalesce(bh, sl, t_now, k, gas, stars, v_esc, mass_h, forest, model, run, cosmo, codes):
+def coalesce(bh, sl, t_now, k, gas, stars, v_esc, mass_h, model, run, cosmo):
     """Apply every coalescence due by ``t_now`` in the slice ``sl`` (see module rules).
 
     ``gas``, ``stars`` and ``v_esc`` are the slice's (indexed by ``row - sl.start``).
