@@ -28,7 +28,8 @@ from bhgrow.trees import io as tio
 from bhgrow.trees.forest import SnapshotTable, _search_runs
 from bhgrow.trees.io import HDF5Forests, _SeenIds, open_forests
 from bhgrow.trees.toy import toy_forest
-from bhgrow.trees.validate import (ID_TABLE_MIN, ID_TABLE_SPAN, _nodes_on_cycles,
+from bhgrow.trees.validate import (ID_TABLE_MIN, ID_TABLE_SPAN, RANK_TABLE_SPAN,
+                                   _nodes_on_cycles,
                                    find_problems, id_table, rows_of_ids)
 
 # the module (``bhgrow.trees.validate`` the name is also the function the package exports)
@@ -127,6 +128,8 @@ def toy_variant(kind: str, seed: int = 3) -> Forest:
 
     if kind == "sparse":                   # ids far apart: the sort-and-search path
         node = remap(10**9, 7)
+    elif kind == "spread":                 # 200 id values per node: the rank table
+        node = remap(200, -3)
     elif kind == "huge":                   # near the top of int64, dense
         node = remap(1, 2**62)
     elif kind == "negative":               # negative ids (and -1 as a node id)
@@ -148,12 +151,13 @@ def toy_variant(kind: str, seed: int = 3) -> Forest:
 
 
 # ================================================================ Forest._index
-@pytest.mark.parametrize("kind", ["plain", "sparse", "huge", "negative", "ties", "nan_zero",
-                                  "repeated", "missing", "wild"])
+@pytest.mark.parametrize("kind", ["plain", "sparse", "spread", "huge", "negative", "ties",
+                                  "nan_zero", "repeated", "missing", "wild"])
 def test_index_equals_the_previous_index(kind):
     f = toy_variant(kind)
     dense = kind not in ("sparse", "repeated")
     assert (id_table(f.node_id) is not None) == dense   # the path the case is meant for
+    assert isinstance(id_table(f.node_id), tval._RankTable) == (kind == "spread")
     assert_index_as_before(f)
 
 
@@ -241,7 +245,12 @@ def test_id_table_falls_back_for_repeated_sparse_or_no_ids():
     n = 10
     edge = ID_TABLE_SPAN * n + ID_TABLE_MIN                               # widest span
     assert id_table(np.r_[np.arange(n - 1), edge - 1].astype(np.int64)) is not None
-    assert id_table(np.r_[np.arange(n - 1), edge].astype(np.int64)) is None
+    assert isinstance(id_table(np.r_[np.arange(n - 1), edge].astype(np.int64)),
+                      tval._RankTable)                                   # then by rank
+    rank_edge = RANK_TABLE_SPAN * n + ID_TABLE_MIN
+    assert id_table(np.r_[np.arange(n - 1), rank_edge - 1].astype(np.int64)) is not None
+    assert id_table(np.r_[np.arange(n - 1), rank_edge].astype(np.int64)) is None
+    assert id_table(np.r_[np.arange(n - 1), edge, 3].astype(np.int64)) is None   # repeated
     extremes = np.array([-2**63, 2**63 - 1], dtype=np.int64)             # no overflow
     assert id_table(extremes) is None
     top = id_table(np.array([2**63 - 1, 2**63 - 2], dtype=np.int64))
@@ -254,8 +263,8 @@ def _columns(f: Forest) -> dict:
             "snap": f.snap, "mass_msun": f.mass_msun}
 
 
-@pytest.mark.parametrize("kind", ["plain", "huge", "negative", "nan_zero", "missing",
-                                  "wild"])
+@pytest.mark.parametrize("kind", ["plain", "spread", "huge", "negative", "nan_zero",
+                                  "missing", "wild"])
 def test_find_problems_table_path_reports_as_the_search_path(kind, monkeypatch):
     f = toy_variant(kind)
     cols = _columns(f)
@@ -272,6 +281,28 @@ def test_find_problems_table_path_reports_as_the_search_path(kind, monkeypatch):
         np.testing.assert_array_equal(links_fast[k], links_slow[k])
     if kind == "plain":
         assert fast == []
+
+
+def test_rank_table_rows_equal_numpy_search():
+    """Rows by rank against numpy's sort and binary search (the reference), for unique ids
+    spread over 17-256 values each, with absent, outside and extreme ids asked."""
+    rng = np.random.default_rng(11)
+    for n in (2, 63, 64, 65, 1000, 5000):
+        for per in (17, 40, 255):
+            lo = int(rng.integers(-2**40, 2**40))
+            span = per * n + ID_TABLE_MIN
+            ids = lo + np.r_[0, span - 1, 1 + rng.choice(span - 2, n - 2, replace=False)]
+            ids = rng.permutation(ids).astype(np.int64)
+            table = id_table(ids)
+            assert isinstance(table, tval._RankTable), (n, per)
+            wanted = np.r_[ids, lo + rng.integers(-70, span + 70, 400),
+                           [2**63 - 1, -2**63, lo - 1, lo]].astype(np.int64)
+            order = np.argsort(ids)
+            pos = np.minimum(np.searchsorted(ids[order], wanted), n - 1)
+            want = np.where(ids[order][pos] == wanted, order[pos], -1)
+            got = rows_of_ids(table, wanted)
+            assert got.dtype == np.int64
+            np.testing.assert_array_equal(got, want)
 
 
 def test_find_problems_cycles_skip_only_when_every_link_goes_later(monkeypatch):
