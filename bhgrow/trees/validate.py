@@ -420,15 +420,16 @@ def id_table(ids: np.ndarray):
         A table for :func:`rows_of_ids`: ``(lo, table)`` with ``table[i - lo]`` the row of
         id ``i`` (-1 if no row has it) where the ids span at most ``ID_TABLE_SPAN *
         ids.size + ID_TABLE_MIN`` values, else a :class:`_RankTable` up to
-        ``RANK_TABLE_SPAN`` values per id (numpy >= 2.0); None if ``ids`` is empty, holds an
-        id twice, or spans more.
+        ``RANK_TABLE_SPAN`` values per id (int64 ids, numpy >= 2.0); None if ``ids`` is
+        empty, holds an id twice, or spans more.
     """
     n = ids.size
     if n == 0:
         return None
     lo, hi = int(ids.min()), int(ids.max())
     if hi - lo + 1 > ID_TABLE_SPAN * n + ID_TABLE_MIN:   # Python ints: no overflow
-        if hi - lo + 1 > RANK_TABLE_SPAN * n + ID_TABLE_MIN or not hasattr(np, "bitwise_count"):
+        if (hi - lo + 1 > RANK_TABLE_SPAN * n + ID_TABLE_MIN or ids.dtype != np.int64
+                or not hasattr(np, "bitwise_count")):
             return None
         table = _RankTable(ids, lo, hi)
         return table if table.unique else None
